@@ -1,0 +1,24 @@
+PYTHON ?= python3
+VENV   := .venv
+PY     := $(VENV)/bin/python
+STAMP  := $(VENV)/.installed
+
+.PHONY: test demo bench clean
+
+$(STAMP): pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+test: $(STAMP)
+	$(PY) -m pytest -q
+
+demo: $(STAMP)
+	$(PY) -m streamtag.demo.run
+
+bench: $(STAMP)
+	$(PY) -m streamtag bench
+
+clean:
+	rm -rf $(VENV) demo-run .pytest_cache

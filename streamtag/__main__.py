@@ -1,0 +1,3 @@
+from streamtag.cli import main
+
+raise SystemExit(main())
