@@ -1,0 +1,487 @@
+"""Tests for streamtag.features.
+
+The vectorised extractor is checked against a plain reference written below (one token at a time,
+one feature at a time, straight from the spec dict), and its sparse output against scipy's own
+vstack. Character classes come from Python's str methods (the Unicode character database).
+"""
+
+import json
+from collections import Counter
+
+import numpy as np
+import pytest
+import scipy.sparse
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from streamtag.errors import ConfigError, DataError, StreamtagError
+from streamtag.features import (
+    FeatureExtractor,
+    FeatureSpec,
+    collapse_runs,
+    word_shape,
+)
+
+ALL_FLAGS = [
+    "has_digit", "all_digit", "has_alpha", "has_upper", "has_lower", "all_upper", "all_lower",
+    "title", "initial_upper", "mixed_alnum", "no_alnum", "has_dash", "has_dot", "has_underscore",
+    "has_slash", "has_colon", "has_at", "has_equals",
+]
+ALL_GROUPS = ["lower", "shape", "collapsed_shape", "prefix", "suffix", "flags", "kind", "length",
+              "wordlists"]
+
+FULL_SPEC = {
+    "version": 1,
+    "token": {
+        "groups": ALL_GROUPS,
+        "max_value_chars": 6,
+        "prefix_lengths": [1, 2, 3],
+        "suffix_lengths": [2, 4],
+        "flags": ALL_FLAGS,
+        "length_bounds": [1, 3, 5],
+    },
+    "position": {"first_last": True, "relative_buckets": 3},
+    "window": [
+        {"offset": -2, "groups": ["lower", "kind"]},
+        {"offset": -1, "groups": ["lower", "shape", "suffix"]},
+        {"offset": 1, "groups": ["collapsed_shape", "prefix", "flags"]},
+        {"offset": 3, "groups": ["wordlists", "length"]},
+    ],
+    # invented, generic words
+    "wordlists": {"svc": ["daemon", "proxy"], "bad": ["failed", "Denied"]},
+}
+
+
+# --- plain reference implementation --------------------------------------------------------------
+
+def ref_shape(text):
+    """Word shape, one character at a time (common practice: X upper, x lower, d digit, rest kept)."""
+    out = ""
+    for char in text:
+        if char.isupper():
+            out += "X"
+        elif char.isalpha():
+            out += "x"      # letters without case are written as lower, as the spec documents
+        elif char.isdigit():
+            out += "d"
+        else:
+            out += char
+    return out
+
+
+def ref_collapse(shape):
+    out = ""
+    for char in shape:
+        if not out or out[-1] != char:
+            out += char
+    return out
+
+
+def ref_flag(name, text):
+    """Flags written with Python's str character predicates (Unicode character database)."""
+    letters = [c for c in text if c.isalpha()]
+    digits = [c for c in text if c.isdigit()]
+    if name == "has_digit":
+        return len(digits) > 0
+    if name == "all_digit":
+        return len(digits) == len(text)
+    if name == "has_alpha":
+        return len(letters) > 0
+    if name == "has_upper":
+        return any(c.isupper() for c in text)
+    if name == "has_lower":
+        return any(c.isalpha() and not c.isupper() for c in text)
+    if name == "all_upper":
+        return text.isupper()
+    if name == "all_lower":
+        return text.islower()
+    if name == "title":
+        return text.istitle()
+    if name == "initial_upper":
+        return text[0].isupper()
+    if name == "mixed_alnum":
+        return len(letters) > 0 and len(digits) > 0
+    if name == "no_alnum":
+        return not letters and not digits
+    symbol = {"has_dash": "-", "has_dot": ".", "has_underscore": "_", "has_slash": "/",
+              "has_colon": ":", "has_at": "@", "has_equals": "="}[name]
+    return symbol in text
+
+
+def ref_group(group, text, kind, cfg):
+    token = cfg["token"]
+    cut = token["max_value_chars"]
+    lower = text.lower()
+    if group == "lower":
+        return ["lower=" + lower[:cut]]
+    if group == "shape":
+        return ["shape=" + ref_shape(text)[:cut]]
+    if group == "collapsed_shape":
+        return ["cshape=" + ref_collapse(ref_shape(text))[:cut]]
+    if group == "prefix":
+        return ["p%d=%s" % (n, lower[:n]) for n in token["prefix_lengths"] if len(lower) >= n]
+    if group == "suffix":
+        return ["s%d=%s" % (n, lower[len(lower) - n:]) for n in token["suffix_lengths"]
+                if len(lower) >= n]
+    if group == "flags":
+        return ["flag=" + name for name in token["flags"] if ref_flag(name, text)]
+    if group == "kind":
+        return ["kind=" + kind]
+    if group == "length":
+        bounds = token["length_bounds"]
+        for bound in bounds:
+            if len(text) <= bound:
+                return ["len<=%d" % bound]
+        return ["len>%d" % bounds[-1]]
+    if group == "wordlists":
+        return ["list=" + name for name, words in sorted(cfg["wordlists"].items())
+                if lower in [w.lower() for w in words]]
+    raise AssertionError(group)
+
+
+def ref_features(texts, kinds, cfg):
+    """Feature strings of every token of one line, written out plainly."""
+    n = len(texts)
+    rows = []
+    for i in range(n):
+        row = ["bias"]
+        if cfg["position"]["first_last"] and i == 0:
+            row.append("pos=first")
+        if cfg["position"]["first_last"] and i == n - 1:
+            row.append("pos=last")
+        buckets = cfg["position"]["relative_buckets"]
+        if buckets:
+            row.append("rel=%d" % (i * buckets // n))
+        for group in cfg["token"]["groups"]:
+            row += ref_group(group, texts[i], kinds[i], cfg)
+        for entry in cfg["window"]:
+            offset = entry["offset"]
+            label = ("+%d" % offset) if offset > 0 else str(offset)
+            j = i + offset
+            if j < 0:
+                row.append(label + "|BOS")
+            elif j >= n:
+                row.append(label + "|EOS")
+            else:
+                for group in entry["groups"]:
+                    row += [label + "|" + s for s in ref_group(group, texts[j], kinds[j], cfg)]
+        rows.append(row)
+    return rows
+
+
+def decoded_rows(matrix, vocabulary):
+    """Column names of each CSR row, checking that every entry is a single 1.0."""
+    rows = []
+    for i in range(matrix.shape[0]):
+        columns = matrix.indices[matrix.indptr[i]:matrix.indptr[i + 1]]
+        values = matrix.data[matrix.indptr[i]:matrix.indptr[i + 1]]
+        assert len(set(columns.tolist())) == len(columns), "a column appears twice in one row"
+        assert np.all(values == 1.0)
+        rows.append(sorted(vocabulary[j] for j in columns))
+    return rows
+
+
+# --- strategies ----------------------------------------------------------------------------------
+
+# Characters chosen to reach every branch of the character classes: ASCII classes, punctuation used in
+# log tokens, the separator "|", and non-ASCII letters/digits (É upper, ß lower, ǅ title-case,
+# İ whose lower case is two code points, Arabic-Indic digit ٣, superscript two).
+ALPHABET = "aZk09-._/:@=|#" + "Éßǅİ٣²"
+POOL = ["Daemon", "PROXY", "failed", "denied", "sshd", "10.4.7.21", "Host", "2024", ":", "ab-cd"]
+KINDS = ["word", "number", "punct", "ipv4"]
+
+token_text = st.one_of(st.sampled_from(POOL), st.text(ALPHABET, min_size=1, max_size=9))
+
+
+@st.composite
+def sentences(draw, max_tokens=8):
+    texts = draw(st.lists(token_text, min_size=0, max_size=max_tokens))
+    kinds = draw(st.lists(st.sampled_from(KINDS), min_size=len(texts), max_size=len(texts)))
+    return (texts, kinds)
+
+
+batches = st.lists(sentences(), min_size=1, max_size=6)
+
+
+@st.composite
+def spec_dicts(draw):
+    offsets = draw(st.lists(st.sampled_from([-3, -2, -1, 1, 2, 3]), unique=True, max_size=4))
+    group_subset = st.lists(st.sampled_from(ALL_GROUPS), unique=True, max_size=5)
+    return {
+        "version": 1,
+        "token": {
+            "groups": draw(group_subset),
+            "max_value_chars": draw(st.integers(1, 10)),
+            "prefix_lengths": sorted(draw(st.sets(st.integers(1, 4), max_size=3))),
+            "suffix_lengths": sorted(draw(st.sets(st.integers(1, 4), max_size=3))),
+            "flags": draw(st.lists(st.sampled_from(ALL_FLAGS), unique=True)),
+            "length_bounds": sorted(draw(st.sets(st.integers(1, 9), min_size=1, max_size=3))),
+        },
+        "position": {"first_last": draw(st.booleans()), "relative_buckets": draw(st.integers(0, 4))},
+        "window": [{"offset": o, "groups": draw(group_subset)} for o in offsets],
+        "wordlists": {"svc": ["daemon", "proxy"], "bad": ["failed", "Denied"]},
+    }
+
+
+# --- shapes, affixes, flags ----------------------------------------------------------------------
+
+def test_word_shape_common_examples():
+    # common practice (word-shape features of NER taggers): X upper, x lower, d digit, rest kept
+    assert word_shape("Host") == "Xxxx"
+    assert word_shape("2024") == "dddd"
+    assert word_shape("eth0:1") == "xxxd:d"
+    assert word_shape("10.4.7.21") == "dd.d.d.dd"
+    # collapsed ("short") shape: each run of one class becomes one character, common practice
+    assert collapse_runs("Xxxx") == "Xx"
+    assert collapse_runs("dddd") == "d"
+    assert collapse_runs("dd.d.d.dd") == "d.d.d.d"
+
+
+def test_shape_of_non_ascii_follows_unicode_classes():
+    # Unicode character database via Python's str predicates: É is upper, ß lower, ٣ (Arabic-Indic
+    # three) a digit, ² a digit (str.isdigit), « neither
+    assert word_shape("Élan") == "Xxxx"
+    assert word_shape("straße") == "xxxxxx"
+    assert word_shape("٣٣") == "dd"
+    assert word_shape("x²") == "xd"
+    assert word_shape("«a»") == "«x»"
+
+
+@given(st.text(ALPHABET + "xX ", max_size=20))
+def test_shape_matches_plain_reference(text):
+    assert word_shape(text) == ref_shape(text)
+    assert collapse_runs(word_shape(text)) == ref_collapse(ref_shape(text))
+
+
+def test_prefix_and_suffix_features():
+    spec = FeatureSpec.from_dict({"token": {"groups": ["prefix", "suffix"], "prefix_lengths": [1, 2, 3],
+                                            "suffix_lengths": [1, 3, 5]}})
+    rows = FeatureExtractor(spec).feature_strings(["Daemon", "ab"], ["word", "word"])
+    # affixes are string slices of the lower-cased token (common practice); none longer than the token
+    affixes = [[f for f in row if f[0] in "ps" and f[1].isdigit()] for row in rows]
+    assert affixes[0] == ["p1=d", "p2=da", "p3=dae", "s1=n", "s3=mon", "s5=aemon"]
+    assert affixes[1] == ["p1=a", "p2=ab", "s1=b"]
+
+
+@given(st.text(ALPHABET, min_size=1, max_size=12))
+def test_flags_match_python_character_predicates(text):
+    spec = FeatureSpec.from_dict({"token": {"groups": ["flags"], "flags": ALL_FLAGS}})
+    got = {f for f in FeatureExtractor(spec).feature_strings([text], ["word"])[0]
+           if f.startswith("flag=")}
+    assert got == {"flag=" + name for name in ALL_FLAGS if ref_flag(name, text)}
+
+
+def test_flags_on_log_tokens():
+    spec = FeatureSpec.from_dict({"token": {"groups": ["flags"], "flags": ALL_FLAGS}})
+    rows = FeatureExtractor(spec).feature_strings(["HTTP", "Host", "web-03", "2024"], ["word"] * 4)
+    flags = [{f[5:] for f in row if f.startswith("flag=")} for row in rows]
+    # str.isupper / str.istitle semantics (Python reference)
+    assert {"all_upper", "has_upper", "initial_upper"} <= flags[0] and "title" not in flags[0]
+    assert {"title", "initial_upper", "has_lower"} <= flags[1] and "all_upper" not in flags[1]
+    assert {"has_dash", "mixed_alnum", "all_lower"} <= flags[2]
+    assert {"all_digit", "has_digit"} <= flags[3] and "has_alpha" not in flags[3]
+
+
+def test_value_cut_and_length_bucket():
+    spec = FeatureSpec.from_dict({"token": {"groups": ["lower", "shape", "length"],
+                                            "max_value_chars": 4, "length_bounds": [2, 8]}})
+    rows = FeatureExtractor(spec).feature_strings(["AbCdEfGhIjK", "ab", "abc"], ["word"] * 3)
+    assert "lower=abcd" in rows[0] and "shape=XxXx" in rows[0] and "len>8" in rows[0]
+    assert "len<=2" in rows[1] and "len<=8" in rows[2]
+
+
+def test_wordlist_fires_on_lower_cased_membership():
+    spec = FeatureSpec.from_dict({"token": {"groups": ["wordlists"]},
+                                  "wordlists": {"svc": ["Daemon", "proxy"]}})
+    rows = FeatureExtractor(spec).feature_strings(["DAEMON", "proxy", "proxies"], ["word"] * 3)
+    assert "list=svc" in rows[0] and "list=svc" in rows[1] and "list=svc" not in rows[2]
+
+
+# --- the extractor against the plain reference ---------------------------------------------------
+
+SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+
+
+@SETTINGS
+@given(spec_dicts(), batches)
+def test_transform_matches_reference(cfg, batch):
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    vocabulary = extractor.fit(batch)
+    matrix, lengths = extractor.transform(batch)
+    expected = [sorted(row) for texts, kinds in batch for row in ref_features(texts, kinds, cfg)]
+    assert lengths.dtype == np.int64 and lengths.tolist() == [len(t) for t, _ in batch]
+    assert matrix.shape == (len(expected), len(vocabulary)) and matrix.dtype == np.float64
+    assert decoded_rows(matrix, vocabulary) == expected
+    # feature_strings is the inspection view of the same thing
+    for texts, kinds in batch:
+        assert [sorted(r) for r in extractor.feature_strings(texts, kinds)] == \
+               [sorted(r) for r in ref_features(texts, kinds, cfg)]
+
+
+def test_window_shifts_with_boundary_markers():
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    texts, kinds = ["sshd", "failed", "for", "PROXY"], ["word"] * 4
+    extractor.fit([(texts, kinds)])
+    rows = decoded_rows(extractor.transform([(texts, kinds)])[0], extractor.vocabulary)
+    assert "-2|BOS" in rows[0] and "-1|BOS" in rows[0] and "-1|BOS" not in rows[1]
+    assert "-2|BOS" in rows[1] and "-2|lower=sshd" in rows[2]
+    assert "-1|lower=sshd" in rows[1] and "+1|p1=f" in rows[0]
+    assert "+3|list=svc" in rows[0] and "+3|EOS" in rows[1]
+    assert "+1|EOS" in rows[3] and "pos=last" in rows[3] and "pos=first" in rows[0]
+
+
+def test_unseen_features_are_ignored():
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    train = [(["login", "failed", "for", "mara"], ["word"] * 4)]
+    extractor.fit(train)
+    other = (["login", "refused", "by", "Zelbor", "gateway"], ["word"] * 5)
+    matrix, _ = extractor.transform([other])
+    known = set(extractor.vocabulary)
+    expected = [sorted(set(row) & known) for row in ref_features(*other, FULL_SPEC)]
+    assert matrix.shape[1] == len(extractor.vocabulary)
+    assert decoded_rows(matrix, extractor.vocabulary) == expected
+
+
+def test_extractor_built_from_a_stored_vocabulary():
+    fitted = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    batch = [(["Host", "web-03", "up"], ["word"] * 3)]
+    fitted.fit(batch)
+    loaded = FeatureExtractor(FeatureSpec.from_dict(fitted.spec.to_dict()), fitted.vocabulary)
+    assert (fitted.transform(batch)[0] != loaded.transform(batch)[0]).nnz == 0
+
+
+@SETTINGS
+@given(batches, st.integers(1, 4))
+def test_min_count_keeps_features_seen_often_enough(batch, min_count):
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    counts = Counter(f for texts, kinds in batch for row in ref_features(texts, kinds, FULL_SPEC)
+                     for f in row)
+    expected = sorted(f for f, c in counts.items() if c >= min_count)
+    assert extractor.fit(batch, min_count=min_count) == expected
+    # chunked counting over a one-shot iterator gives the same vocabulary
+    assert extractor.fit(iter(batch), min_count=min_count, chunk_size=1) == expected
+
+
+@SETTINGS
+@given(st.lists(batches, min_size=1, max_size=4), st.integers(1, 5))
+def test_cache_eviction_does_not_change_results(batch_list, cache_size):
+    spec = FeatureSpec.from_dict(FULL_SPEC)
+    vocabulary = FeatureExtractor(spec).fit([s for b in batch_list for s in b])
+    roomy = FeatureExtractor(spec, vocabulary)
+    tight = FeatureExtractor(spec, vocabulary, cache_size=cache_size)
+    for batch in batch_list + batch_list:     # second pass hits whatever the cache kept
+        a, b = roomy.transform(batch)[0], tight.transform(batch)[0]
+        assert a.shape == b.shape and (a != b).nnz == 0
+    assert len(tight._rows.cache) <= cache_size
+
+
+@SETTINGS
+@given(spec_dicts(), batches)
+def test_batch_equals_stacked_single_sentences(cfg, batch):
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    extractor.fit(batch)
+    together, lengths = extractor.transform(batch)
+    singles = [extractor.transform([sentence]) for sentence in batch]
+    # scipy.sparse.vstack as the reference for stacking rows
+    stacked = scipy.sparse.vstack([m for m, _ in singles], format="csr")
+    assert together.shape == stacked.shape and (together != stacked).nnz == 0
+    assert lengths.tolist() == [int(l[0]) for _, l in singles]
+
+
+def test_empty_batch_and_empty_lines():
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    extractor.fit([(["a"], ["word"])])
+    matrix, lengths = extractor.transform([])
+    assert matrix.shape == (0, len(extractor.vocabulary)) and lengths.tolist() == []
+    matrix, lengths = extractor.transform([([], []), (["a"], ["word"]), ([], [])])
+    assert matrix.shape[0] == 1 and lengths.tolist() == [0, 1, 0]
+
+
+def test_mismatched_kinds_is_a_data_error():
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    with pytest.raises(DataError, match="2 tokens but 1 kinds"):
+        extractor.transform([(["a", "b"], ["word"])])
+
+
+# --- spec round trip and the shipped files ------------------------------------------------------
+
+@SETTINGS
+@given(spec_dicts())
+def test_to_dict_round_trips_through_json(cfg):
+    spec = FeatureSpec.from_dict(cfg)
+    stored = json.loads(json.dumps(spec.to_dict()))    # the model file keeps it as JSON
+    again = FeatureSpec.from_dict(stored)
+    assert again == spec and again.to_dict() == spec.to_dict()
+
+
+def test_word_lists_are_embedded_so_config_is_not_needed(tmp_path):
+    (tmp_path / "lists").mkdir()
+    (tmp_path / "lists" / "svc.txt").write_text("# generic words\nDaemon\n\nproxy\n")
+    (tmp_path / "spec.toml").write_text('[token]\ngroups = ["wordlists"]\n'
+                                        '[wordlists]\nsvc = "lists/svc.txt"\n')
+    stored = FeatureSpec.from_toml(tmp_path / "spec.toml").to_dict()
+    assert stored["wordlists"] == {"svc": ["daemon", "proxy"]}
+    (tmp_path / "lists" / "svc.txt").unlink()
+    extractor = FeatureExtractor(FeatureSpec.from_dict(stored))
+    assert "list=svc" in extractor.feature_strings(["PROXY"], ["word"])[0]
+
+
+def test_shipped_config_and_packaged_default_agree():
+    from pathlib import Path
+    config = Path(__file__).resolve().parents[1] / "config" / "features.toml"
+    spec = FeatureSpec.from_toml(config)
+    assert FeatureSpec.default() == spec
+    assert {name for name, _ in spec.wordlists} == {"service_words", "failure_words"}
+    assert all(words for _, words in spec.wordlists)
+
+
+# --- bad configuration -----------------------------------------------------------------------------
+
+BAD_CONFIGS = [
+    ('colour = "blue"\n', "colour"),
+    ('[token]\ngroupz = ["lower"]\n', "token.groupz"),
+    ('[token]\ngroups = "lower"\n', "token.groups"),
+    ('[token]\ngroups = ["lower", "vibes"]\n', "token.groups"),
+    ('[token]\nflags = ["has_sparkle"]\n', "token.flags"),
+    ('[token]\nprefix_lengths = [0]\n', "token.prefix_lengths"),
+    ('[token]\nmax_value_chars = "10"\n', "token.max_value_chars"),
+    ('[token]\nlength_bounds = [3, 2]\n', "token.length_bounds"),
+    ('[position]\nfirst_last = 1\n', "position.first_last"),
+    ('[position]\nrelative_buckets = -1\n', "position.relative_buckets"),
+    ('[position]\nmiddle = true\n', "position.middle"),
+    ('[[window]]\noffset = 0\ngroups = ["lower"]\n', "window[0].offset"),
+    ('[[window]]\noffset = 1\n[[window]]\noffset = 1\n', "window[1].offset"),
+    ('[[window]]\ngroups = ["lower"]\n', "window[0].offset"),
+    ('[[window]]\noffset = 1\nsize = 2\n', "window[0].size"),
+    ('[wordlists]\nsvc = "missing.txt"\n', "wordlists.svc"),
+    ('[wordlists]\nsvc = 3\n', "wordlists.svc"),
+    ('[wordlists]\n"Bad Name" = ["x"]\n', "wordlists.Bad Name"),
+    ('version = 2\n', "version"),
+    ('token = 3\n', "token"),
+]
+
+
+@pytest.mark.parametrize("text,key", BAD_CONFIGS)
+def test_bad_config_is_one_line_naming_file_and_key(tmp_path, text, key):
+    path = tmp_path / "features.toml"
+    path.write_text(text)
+    with pytest.raises(ConfigError) as caught:
+        FeatureSpec.from_toml(path)
+    message = str(caught.value)
+    assert "\n" not in message and str(path) in message and f"{key}:" in message
+    assert isinstance(caught.value, StreamtagError)
+
+
+def test_unreadable_or_broken_toml_is_a_config_error(tmp_path):
+    with pytest.raises(ConfigError, match="cannot read"):
+        FeatureSpec.from_toml(tmp_path / "absent.toml")
+    path = tmp_path / "broken.toml"
+    path.write_text("[token\n")
+    with pytest.raises(ConfigError, match="not valid TOML") as caught:
+        FeatureSpec.from_toml(path)
+    assert "\n" not in str(caught.value)
+
+
+def test_bad_min_count():
+    with pytest.raises(ConfigError, match="min_count"):
+        FeatureExtractor(FeatureSpec()).fit([], min_count=0)
