@@ -154,13 +154,13 @@ def _dotted_field(value: Any) -> str:
     return value
 
 
-_FILE_MODE = re.compile(r"^0?o?[0-7]{3}$")
+_FILE_MODE = re.compile(r"^(0o|0)?[0-7]{3}$")
 
 
 def _file_mode(value: Any) -> int:
     if not isinstance(value, str) or not _FILE_MODE.match(value):
         raise ValueError(f"must be an octal string like \"0600\", got {_describe(value)}")
-    mode = int(value.replace("o", ""), 8)
+    mode = int(value.removeprefix("0o"), 8)
     # The daemon appends to its own files and rewrites its state: the owner must read and write.
     if mode & 0o600 != 0o600:
         raise ValueError(f"{value} must give the owner read and write (0600 at least)")

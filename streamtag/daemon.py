@@ -1,0 +1,780 @@
+"""``streamtag watch``: follow files, tag every new line, write records, checkpoint; for months.
+
+One main thread does reading, tagging and writing. The watchdog observer (``ChangeWatcher``) only
+puts change hints into a queue; the loop waits on that queue with a short timeout and falls back
+to polling. Signal handlers only set flags, which the loop reads between batches.
+
+Durability, per batch (group commit): append the records to the output and review files, flush and
+fsync both, then save the checkpoint (follower positions + output lengths) atomically. On start the
+outputs are cut back to the lengths in the checkpoint and every file resumes at its checkpointed
+offset. A crash at any moment therefore re-reads at most the batch that was not checkpointed and
+the cut removes its records if they had been written: each input line is in the output exactly once
+(common practice: at-least-once delivery + idempotent checkpoint = effectively once).
+
+A failed write (disk full, EACCES, EIO) keeps the batch in hand, cuts the partial write back to the
+last good length, and retries with exponential backoff; reading pauses and the checkpoint does not
+advance until the batch is written.
+"""
+
+from __future__ import annotations
+
+import argparse
+import errno
+import os
+import queue
+import re
+import signal
+import sys
+import tempfile
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import orjson
+
+from streamtag import records
+from streamtag.config import WatchConfig, load_watch_config
+from streamtag.errors import ConfigError, StreamtagError
+from streamtag.model import Model, default_model_path, load_model
+from streamtag.tagger import TaggedLine, Tagger
+
+STATE_FILE = "state.json"
+STATS_FILE = "stats.json"
+BACKOFF_FIRST_SECONDS = 0.1
+BACKOFF_CAP_SECONDS = 5.0
+MODEL_CHECK_SECONDS = 1.0
+WAIT_SLICE_SECONDS = 0.1  # longest sleep between looks at the signal flags
+# A line is "binary" when more than this share of its characters are control characters or
+# replacement characters from broken UTF-8 (text logs have almost none).
+BINARY_SHARE = 0.3
+# Tagging a sample proves a new model's labels and feature spec work before it is swapped in.
+MODEL_PROBE_LINE = "sshd[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
+
+Log = Callable[[str], None]
+
+
+def stderr_log(message: str) -> None:
+    """One line on stderr (foreground daemon; a service manager adds its own timestamps)."""
+    sys.stderr.write(f"{time.strftime('%Y-%m-%dT%H:%M:%S')} streamtag: {message}\n")
+    sys.stderr.flush()
+
+
+# -- decoding raw bytes into text and flags ----------------------------------------------------
+
+# ECMA-48 (5th ed.) section 5.4: a control sequence is CSI (ESC [), parameter bytes 0x30-0x3F,
+# intermediate bytes 0x20-0x2F, one final byte 0x40-0x7E. OSC strings (ESC ]) end with BEL or ST
+# (ESC \). Other two-byte escapes are ESC followed by one byte 0x40-0x5F.
+_ESCAPE_SEQUENCE = re.compile(
+    r"\x1b\[[\x30-\x3f]*[\x20-\x2f]*[\x40-\x7e]"
+    r"|\x1b\][^\x07\x1b]*(?:\x07|\x1b\\)?"
+    r"|\x1b[\x40-\x5f]"
+)
+# C0 controls except TAB (white space), DEL, and the C1 controls U+0080..U+009F.
+_CONTROL = re.compile(r"[\x00-\x08\x0a-\x1f\x7f-\x9f]")
+
+
+@dataclass(slots=True)
+class DecodedLine:
+    """What to record (``text``, faithful) and what to tag (``tag_text``, same length, controls
+    blanked so that span offsets into it are offsets into ``text``)."""
+
+    text: str
+    tag_text: str
+    flags: list[str]
+    fields: dict | None = None
+    binary: bool = False
+
+
+def decode_text(data: bytes) -> DecodedLine:
+    """Bytes of one line (newline already removed) -> text, text to tag, flags.
+
+    Invalid UTF-8 is replaced by U+FFFD ("invalid_utf8"); NUL becomes a space in the recorded text
+    ("nul_bytes") because many consumers of JSON treat U+0000 as the end of a string; other control
+    characters and terminal escape sequences stay in the recorded text but are blanked for tagging
+    ("control_chars"); a line that is mostly controls is "binary" and not tagged.
+    """
+    try:
+        text = data.decode("utf-8")
+        flags = []
+    except UnicodeDecodeError:
+        text = data.decode("utf-8", errors="replace")
+        flags = ["invalid_utf8"]
+    return _sanitize(text, flags)
+
+
+def _sanitize(text: str, flags: list[str]) -> DecodedLine:
+    if not _CONTROL.search(text):
+        if "invalid_utf8" in flags and _is_binary(text, 0):
+            return DecodedLine(text, text, flags + ["binary"], binary=True)
+        return DecodedLine(text, text, flags)
+    if "\0" in text:
+        text = text.replace("\0", " ")
+        flags.append("nul_bytes")
+    n_controls = len(_CONTROL.findall(text))
+    if n_controls:
+        flags.append("control_chars")
+    if _is_binary(text, n_controls):
+        return DecodedLine(text, text, flags + ["binary"], binary=True)
+    blank = lambda match: " " * len(match.group())  # noqa: E731  (keeps offsets)
+    tag_text = _CONTROL.sub(" ", _ESCAPE_SEQUENCE.sub(blank, text))
+    return DecodedLine(text, tag_text, flags)
+
+
+def _is_binary(text: str, n_controls: int) -> bool:
+    if len(text) < 4:
+        return False
+    suspicious = n_controls + text.count("\ufffd")
+    return suspicious > BINARY_SHARE * len(text)
+
+
+def decode_json(data: bytes, text_field: str) -> DecodedLine:
+    """A JSON object line: the text at the dotted ``text_field``, other fields under ``fields``.
+
+    Malformed JSON (or not an object) keeps the raw line as the text, flagged "bad_json"; an
+    object without a string at ``text_field`` keeps the raw line as text, flagged "no_text_field".
+    """
+    line = decode_text(data)
+    if line.binary:
+        return line
+    try:
+        document = orjson.loads(line.text)
+    except orjson.JSONDecodeError:
+        document = None
+    if not isinstance(document, dict):
+        line.flags.append("bad_json")
+        return line
+    text, fields = _pop_dotted(document, text_field.split("."))
+    if not isinstance(text, str):
+        line.flags.append("no_text_field")
+        line.fields = document
+        return line
+    decoded = _sanitize(text, [f for f in line.flags if f == "invalid_utf8"])
+    decoded.fields = fields
+    return decoded
+
+
+def _pop_dotted(document: dict, parts: list[str]) -> tuple[Any, dict]:
+    """(value at the dotted path or None, the document without it); the document is not changed."""
+    head, rest = parts[0], parts[1:]
+    if head not in document:
+        return None, document
+    value = document[head]
+    if not rest:
+        if not isinstance(value, str):
+            return None, document
+        return value, {k: v for k, v in document.items() if k != head}
+    if not isinstance(value, dict):
+        return None, document
+    found, inner = _pop_dotted(value, rest)
+    if found is None:
+        return None, document
+    remaining = {k: v for k, v in document.items() if k != head}
+    if inner:
+        remaining[head] = inner
+    return found, remaining
+
+
+def strip_newline(data: bytes) -> bytes:
+    if data.endswith(b"\n"):
+        data = data[:-1]
+    if data.endswith(b"\r"):
+        data = data[:-1]
+    return data
+
+
+# -- output files: append, fsync, cut back on failure --------------------------------------------
+
+
+class OutputFile:
+    """An append-only file whose last good length is known; a failed append is cut back to it.
+
+    ``write`` and ``fsync`` have the signatures of ``os.write`` and ``os.fsync`` so a test can
+    inject faults (ENOSPC, EIO) at the exact system call.
+    """
+
+    def __init__(self, path: str, mode: int, write=os.write, fsync=os.fsync) -> None:
+        self.path = path
+        self._write = write
+        self._fsync = fsync
+        self.fd = _open_append(path, mode)
+        self.length = os.fstat(self.fd).st_size  # bytes known to be written and synced
+        self._dirty = False  # a failed append may have left bytes past self.length
+
+    def append(self, data: bytes) -> None:
+        """Write all of ``data`` (not yet synced). On failure the file is cut back; raises OSError."""
+        if self._dirty:
+            self.cut_back()
+        self._dirty = True
+        view = memoryview(data)
+        while view:
+            written = self._write(self.fd, view)
+            view = view[written:]
+
+    def sync(self) -> None:
+        self._fsync(self.fd)
+
+    def commit(self, new_length: int) -> None:
+        self.length = new_length
+        self._dirty = False
+
+    def cut_back(self) -> None:
+        """Remove whatever a failed append left past the last good length."""
+        os.ftruncate(self.fd, self.length)
+        self._dirty = False
+
+    def close(self) -> None:
+        os.close(self.fd)
+
+
+def _open_append(path: str, mode: int) -> int:
+    """Open for append, creating the file (and its folder) private to the owner by default."""
+    parent = os.path.dirname(os.path.abspath(path))
+    os.makedirs(parent, mode=0o700, exist_ok=True)
+    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT | os.O_CLOEXEC, mode)
+    # The umask may have taken bits away from a file we just created; a file that already exists
+    # keeps the mode its owner gave it.
+    if os.fstat(fd).st_size == 0:
+        os.fchmod(fd, mode)
+    return fd
+
+
+class BatchWriter:
+    """Writes a batch to output and review together: both land, or both are cut back."""
+
+    def __init__(self, output: OutputFile, review: OutputFile) -> None:
+        self.output = output
+        self.review = review
+
+    def write(self, output_bytes: bytes, review_bytes: bytes) -> None:
+        files = ((self.output, output_bytes), (self.review, review_bytes))
+        try:
+            for handle, data in files:
+                if data:
+                    handle.append(data)
+            for handle, data in files:
+                if data:
+                    handle.sync()
+        except OSError:
+            for handle, _ in files:
+                try:
+                    handle.cut_back()
+                except OSError:
+                    pass  # still dirty: cut again before the next attempt
+            raise
+        for handle, data in files:
+            handle.commit(handle.length + len(data))
+
+    def close(self) -> None:
+        self.output.close()
+        self.review.close()
+
+
+def write_json_atomic(path: str, payload: dict, mode: int) -> None:
+    """Temp file, fsync, rename over, fsync the folder: readers see the old or the new file."""
+    directory = os.path.dirname(os.path.abspath(path))
+    fd, temporary = tempfile.mkstemp(prefix=".stats.", suffix=".tmp", dir=directory)
+    try:
+        os.fchmod(fd, mode)
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(orjson.dumps(payload, option=orjson.OPT_INDENT_2 | orjson.OPT_APPEND_NEWLINE))
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(temporary, path)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+
+
+# -- latency and throughput statistics ------------------------------------------------------------
+
+
+class LatencyHistogram:
+    """Read-to-write latencies in log-spaced buckets: constant memory however long the daemon runs.
+
+    Buckets are 1 % wide (relative), from 10 microseconds to about 1.6 hours, so a percentile is
+    exact to within 1 %.
+    """
+
+    LOW = 1e-5
+    RATIO = 1.01
+    N_BUCKETS = 2000
+
+    def __init__(self) -> None:
+        self.counts = np.zeros(self.N_BUCKETS, dtype=np.int64)
+        self._log_ratio = np.log(self.RATIO)
+
+    def add(self, latencies: np.ndarray) -> None:
+        """latencies (n,) seconds."""
+        index = np.floor(np.log(np.maximum(latencies, self.LOW) / self.LOW) / self._log_ratio).astype(np.int64)
+        np.add.at(self.counts, np.minimum(index, self.N_BUCKETS - 1), 1)
+
+    def percentile(self, q: float) -> float | None:
+        total = int(self.counts.sum())
+        if total == 0:
+            return None
+        rank = int(np.ceil(q / 100.0 * total))
+        bucket = int(np.searchsorted(np.cumsum(self.counts), max(rank, 1)))
+        return self.LOW * self.RATIO ** (bucket + 0.5)  # bucket middle
+
+    def clear(self) -> None:
+        self.counts[:] = 0
+
+
+@dataclass
+class Stats:
+    started: float
+    interval_start: float
+    lines: int = 0
+    review: int = 0
+    batches: int = 0
+    write_failures: int = 0
+    total_lines: int = 0
+    total_review: int = 0
+    latency: LatencyHistogram = field(default_factory=LatencyHistogram)
+
+
+# -- the daemon -----------------------------------------------------------------------------------
+
+
+@dataclass(slots=True)
+class _Pending:
+    """Lines read but not yet written, with the time each was read (for latency)."""
+
+    lines: list = field(default_factory=list)
+    read_at: list = field(default_factory=list)
+    started: float = 0.0
+
+    def __len__(self) -> int:
+        return len(self.lines)
+
+
+class Daemon:
+    """The watch loop. ``run()`` returns the exit code; ``request_stop``/``request_reload`` are
+    what the signal handlers call (and what in-process tests call)."""
+
+    def __init__(
+        self,
+        config: WatchConfig,
+        log: Log = stderr_log,
+        write: Callable[[int, Any], int] = os.write,
+        fsync: Callable[[int], None] = os.fsync,
+        clock: Callable[[], float] = time.monotonic,
+        install_signals: bool = True,
+    ) -> None:
+        self.config = config
+        self.log = log
+        self._write = write
+        self._fsync = fsync
+        self.clock = clock
+        self.install_signals = install_signals
+        self.stop_requested = False
+        self.reload_requested = False
+        self.hints: queue.Queue = queue.Queue()
+        self.state_path = os.path.join(config.state_dir, STATE_FILE)
+        self.stats_path = os.path.join(config.state_dir, STATS_FILE)
+        self.model_path = str(config.model_path) if config.model_path else str(default_model_path())
+        self.checkpoints = 0  # number of checkpoints saved (tests and stats)
+
+    # signal-safe: only set flags
+    def request_stop(self, *_: Any) -> None:
+        self.stop_requested = True
+
+    def request_reload(self, *_: Any) -> None:
+        self.reload_requested = True
+
+    def run(self) -> int:
+        try:
+            return self._run()
+        except StreamtagError as exc:
+            self.log(str(exc))
+            return exc.exit_code
+
+    # -- start and stop ------------------------------------------------------------------------
+
+    def _run(self) -> int:
+        from streamtag.checkpoint import load_state, recover_outputs
+        from streamtag.follow import ChangeWatcher, Follower
+
+        config = self.config
+        if not config.inputs:
+            raise ConfigError(f"{config.config_path or 'command line'}: inputs.paths: no input given (nothing to watch)")
+        os.makedirs(config.state_dir, mode=0o700, exist_ok=True)
+        self.tagger = self._load_tagger(self.model_path)
+        self.model_signature = _file_signature(self.model_path)
+        state = load_state(self.state_path)
+        if state is not None:
+            recover_outputs(state, config.output_path, config.review_path)
+        elif _size(config.output_path) > 0:
+            self.log(f"no checkpoint in {config.state_dir}: appending to the existing {config.output_path}")
+        self.writer = BatchWriter(
+            OutputFile(config.output_path, config.file_mode, self._write, self._fsync),
+            OutputFile(config.review_path, config.file_mode, self._write, self._fsync),
+        )
+        self.follower = Follower(
+            list(config.inputs),
+            start_at=config.start_at,
+            max_line_bytes=config.max_line_bytes,
+            idle_flush_seconds=config.idle_flush_seconds,
+            saved=state.files if state is not None else None,
+            clock=self.clock,
+            on_warning=self.log,
+        )
+        watcher = self._start_watcher(ChangeWatcher)
+        previous_handlers = self._install_signal_handlers()
+        self.log(
+            f"watching {len(config.inputs)} input pattern(s); model {self.tagger.model_id}; "
+            f"output {config.output_path}; review {config.review_path} below {config.review_threshold:g}"
+            + ("; resumed from checkpoint" if state is not None else "")
+        )
+        try:
+            return self._loop()
+        finally:
+            self._restore_signal_handlers(previous_handlers)
+            if watcher is not None:
+                watcher.stop()
+            self.follower.close()
+            self.writer.close()
+
+    def _start_watcher(self, watcher_class):
+        try:
+            watcher = watcher_class(list(self.config.inputs), self.hints)
+            watcher.start()
+            return watcher
+        except Exception as exc:  # e.g. inotify watch limit: polling still finds every change
+            self.log(f"change notices unavailable ({type(exc).__name__}: {exc}); polling every "
+                     f"{self.config.poll_interval_seconds:g} s")
+            return None
+
+    def _install_signal_handlers(self) -> dict:
+        if not self.install_signals or threading.current_thread() is not threading.main_thread():
+            return {}
+        previous = {}
+        for signum, handler in ((signal.SIGTERM, self.request_stop), (signal.SIGINT, self.request_stop),
+                                (signal.SIGHUP, self.request_reload)):
+            previous[signum] = signal.signal(signum, handler)
+        return previous
+
+    @staticmethod
+    def _restore_signal_handlers(previous: dict) -> None:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+
+    # -- the loop ------------------------------------------------------------------------------
+
+    def _loop(self) -> int:
+        config = self.config
+        now = self.clock()
+        self.stats = Stats(started=now, interval_start=now)
+        pending = _Pending()
+        max_wait = config.batch_max_wait_ms / 1000.0
+        last_poll = -float("inf")
+        next_model_check = now + MODEL_CHECK_SECONDS
+        self.follower.poll()
+        self._checkpoint()  # positions of newly found files count from now on (start_at = "end")
+        last_saved = self.follower.snapshot()
+        lines: list = []
+        while True:
+            if self.stop_requested:
+                return self._finish(pending)
+            now = self.clock()
+            # Lines are tagged when their batch is written, so a swap here is between batches.
+            if self.reload_requested or now >= next_model_check:
+                self._maybe_swap_model()
+                next_model_check = now + MODEL_CHECK_SECONDS
+            if now - self.stats.interval_start >= config.stats_interval_seconds:
+                self._emit_stats()
+            # Wait (only when the last read found nothing): for change hints when idle, for more
+            # lines while a partial batch lingers.
+            hinted = False
+            if not lines:
+                if len(pending):
+                    timeout = pending.started + max_wait - now
+                else:
+                    timeout = last_poll + config.poll_interval_seconds - now
+                hinted = self._wait_for_hint(timeout) if timeout > 0 else False
+            now = self.clock()
+            if hinted or len(pending) or now - last_poll >= config.poll_interval_seconds:
+                self.follower.poll()
+                last_poll = now
+            room = config.batch_max_lines - len(pending)
+            lines = self.follower.read(room) if room > 0 else []
+            if lines:
+                read_time = self.clock()
+                if not len(pending):
+                    pending.started = read_time
+                pending.lines.extend(lines)
+                pending.read_at.extend([read_time] * len(lines))
+            if len(pending) and (len(pending) >= config.batch_max_lines or self.clock() - pending.started >= max_wait):
+                exit_code = self._write_with_retry(pending)
+                if exit_code:
+                    return exit_code
+                last_saved = None
+                pending = _Pending()
+            elif not len(pending) and not lines:
+                last_saved = self._checkpoint_if_moved(last_saved)
+
+    def _finish(self, pending: _Pending) -> int:
+        """Stop requested: write the batch in hand, checkpoint, last stats line."""
+        if len(pending):
+            exit_code = self._write_with_retry(pending)
+        else:
+            exit_code = 0 if self._save_checkpoint_with_retry() else 1
+        if exit_code == 0:
+            self._emit_stats(final=True)
+            self.log("stopped: every line read is written and checkpointed")
+        return exit_code
+
+    def _wait_for_hint(self, timeout: float) -> bool:
+        """Sleep until a change hint, a signal flag or the timeout; drains the hint queue."""
+        deadline = self.clock() + timeout
+        while not (self.stop_requested or self.reload_requested):
+            remaining = deadline - self.clock()
+            if remaining <= 0:
+                return False
+            try:
+                self.hints.get(timeout=min(remaining, WAIT_SLICE_SECONDS))
+            except queue.Empty:
+                continue
+            while True:
+                try:
+                    self.hints.get_nowait()
+                except queue.Empty:
+                    return True
+        return False
+
+    def _checkpoint_if_moved(self, last_saved):
+        """Idle: save positions that moved without lines (new file at its end, rotation, truncation)."""
+        snapshot = self.follower.snapshot()
+        if snapshot != last_saved:
+            self._save_checkpoint_with_retry()
+        return snapshot
+
+    # -- one batch ------------------------------------------------------------------------------
+
+    def _write_with_retry(self, pending: _Pending) -> int:
+        """Tag, write (retrying until it lands), checkpoint. 0, or 1 when stopped during a fault."""
+        record_bytes, review_bytes, n_review = self._encode_batch(pending.lines)
+        delay = BACKOFF_FIRST_SECONDS
+        while True:
+            try:
+                self.writer.write(record_bytes, review_bytes)
+                break
+            except OSError as exc:
+                self.stats.write_failures += 1
+                if self.stop_requested:
+                    self.log(f"stopping during a write fault ({_reason(exc)}): {len(pending)} lines not written; "
+                             "they are read again at the next start")
+                    return 1
+                self.log(f"write failed ({_reason(exc)}); holding {len(pending)} lines, retrying in {delay:g} s")
+                self._sleep(delay)
+                delay = min(delay * 2, BACKOFF_CAP_SECONDS)
+        written_at = self.clock()
+        self.stats.latency.add(written_at - np.asarray(pending.read_at))
+        self.stats.lines += len(pending)
+        self.stats.review += n_review
+        self.stats.batches += 1
+        if not self._save_checkpoint_with_retry():
+            return 1
+        return 0
+
+    def _save_checkpoint_with_retry(self) -> bool:
+        delay = BACKOFF_FIRST_SECONDS
+        while True:
+            try:
+                self._checkpoint()
+                return True
+            except OSError as exc:
+                if self.stop_requested:
+                    # The outputs are ahead of the checkpoint; the next start cuts them back and
+                    # reads those lines again, so nothing is lost or duplicated.
+                    self.log(f"stopping during a checkpoint fault ({_reason(exc)})")
+                    return False
+                self.log(f"checkpoint failed ({_reason(exc)}); retrying in {delay:g} s")
+                self._sleep(delay)
+                delay = min(delay * 2, BACKOFF_CAP_SECONDS)
+
+    def _checkpoint(self) -> None:
+        from streamtag.checkpoint import State, save_state
+
+        state = State(
+            files=self.follower.snapshot(),
+            output_bytes=self.writer.output.length,
+            review_bytes=self.writer.review.length,
+            model_id=self.tagger.model_id,
+        )
+        save_state(self.state_path, state, mode=self.config.file_mode)
+        self.checkpoints += 1
+
+    def _sleep(self, seconds: float) -> None:
+        deadline = time.monotonic() + seconds
+        while not self.stop_requested and time.monotonic() < deadline:
+            time.sleep(min(WAIT_SLICE_SECONDS, max(0.0, deadline - time.monotonic())))
+
+    def _encode_batch(self, raw_lines: list) -> tuple[bytes, bytes, int]:
+        """RawLines -> (output bytes, review bytes, number of review records)."""
+        config = self.config
+        if config.input_format == "json":
+            decoded = [decode_json(strip_newline(raw.data), config.text_field) for raw in raw_lines]
+        else:
+            decoded = [decode_text(strip_newline(raw.data)) for raw in raw_lines]
+        tagged = self._tag(decoded)
+        model_id = self.tagger.model_id
+        threshold = config.review_threshold
+        output, review = [], []
+        for raw, line, result in zip(raw_lines, decoded, tagged):
+            result.text = line.text  # faithful text; span offsets are the same in both
+            doubtful = not line.binary and result.confidence < threshold
+            record = records.make_record(
+                result, model_id, doubtful, source=raw.path, offset=raw.start, line=raw.line_no,
+                flags=list(raw.flags) + line.flags, fields=line.fields,
+            )
+            output.append(record)
+            if doubtful:
+                review.append(records.make_review_record(record, result, threshold))
+        return records.encode(output), records.encode(review), len(review)
+
+    def _tag(self, decoded: list[DecodedLine]) -> list[TaggedLine]:
+        """Tag the text lines of a batch; binary lines get an empty result (recorded, not tagged)."""
+        to_tag = [i for i, line in enumerate(decoded) if not line.binary]
+        results: list[TaggedLine | None] = [None] * len(decoded)
+        texts = [decoded[i].tag_text for i in to_tag]
+        try:
+            tagged = self.tagger.tag(texts, review_below=self.config.review_threshold)
+        except Exception as exc:  # a defect must not stall the stream: tag line by line instead
+            self.log(f"tagging a batch failed ({type(exc).__name__}: {exc}); tagging its lines one by one")
+            tagged = [self._tag_one(text) for text in texts]
+        for i, result in zip(to_tag, tagged):
+            results[i] = result
+        for i, line in enumerate(decoded):
+            if results[i] is None:
+                results[i] = TaggedLine(text=line.text, spans=[], confidence=1.0, n_tokens=0)
+        return results
+
+    def _tag_one(self, text: str) -> TaggedLine:
+        try:
+            return self.tagger.tag([text], review_below=self.config.review_threshold)[0]
+        except Exception:
+            return TaggedLine(text=text, spans=[], confidence=0.0, n_tokens=0, flags=["tag_error"])
+
+    # -- model swap ----------------------------------------------------------------------------
+
+    def _load_tagger(self, path: str) -> Tagger:
+        """Load and probe a model; ModelError (one line) if it cannot tag."""
+        model = load_model(path)
+        return self._probe(model)
+
+    def _probe(self, model: Model) -> Tagger:
+        from streamtag.errors import ModelError
+
+        try:
+            tagger = Tagger(model, max_tokens=self.config.max_tokens, window_overlap=self.config.window_overlap)
+            tagger.tag([MODEL_PROBE_LINE], review_below=self.config.review_threshold)
+        except StreamtagError:
+            raise
+        except Exception as exc:
+            raise ModelError(f"{self.model_path}: model cannot tag ({type(exc).__name__}: {exc})") from None
+        return tagger
+
+    def _maybe_swap_model(self) -> None:
+        signature = _file_signature(self.model_path)
+        if not self.reload_requested and signature == self.model_signature:
+            return
+        reason = "reload requested" if self.reload_requested else "model file changed"
+        self.reload_requested = False
+        self.model_signature = signature
+        try:
+            tagger = self._load_tagger(self.model_path)
+        except StreamtagError as exc:
+            self.log(f"{reason}: new model refused, still tagging with {self.tagger.model_id}: {exc}")
+            return
+        if tagger.model_id == self.tagger.model_id:
+            self.log(f"{reason}: model unchanged ({tagger.model_id})")
+            return
+        self.log(f"{reason}: now tagging with {tagger.model_id} (was {self.tagger.model_id})")
+        self.tagger = tagger
+
+    # -- statistics ----------------------------------------------------------------------------
+
+    def _emit_stats(self, final: bool = False) -> None:
+        stats = self.stats
+        now = self.clock()
+        elapsed = max(now - stats.interval_start, 1e-9)
+        stats.total_lines += stats.lines
+        stats.total_review += stats.review
+        p50, p99 = stats.latency.percentile(50), stats.latency.percentile(99)
+        payload = {
+            "time": time.time(),
+            "interval_seconds": round(elapsed, 3),
+            "lines": stats.lines,
+            "lines_per_second": round(stats.lines / elapsed, 1),
+            "review_rate": round(stats.review / stats.lines, 4) if stats.lines else 0.0,
+            "bytes_behind": int(self.follower.pending_bytes()),
+            "latency_p50_ms": None if p50 is None else round(p50 * 1000, 2),
+            "latency_p99_ms": None if p99 is None else round(p99 * 1000, 2),
+            "batches": stats.batches,
+            "write_failures": stats.write_failures,
+            "total_lines": stats.total_lines,
+            "total_review": stats.total_review,
+            "uptime_seconds": round(now - stats.started, 1),
+            "model": self.tagger.model_id,
+            "final": final,
+        }
+        latency = ("-" if p50 is None else
+                   f"p50 {payload['latency_p50_ms']:.1f} ms, p99 {payload['latency_p99_ms']:.1f} ms")
+        self.log(
+            f"stats: {payload['lines_per_second']:.1f} lines/s, review {100 * payload['review_rate']:.1f}%, "
+            f"{payload['bytes_behind']} bytes behind, latency {latency}, model {payload['model']}"
+        )
+        try:
+            write_json_atomic(self.stats_path, payload, self.config.file_mode)
+        except OSError as exc:
+            self.log(f"cannot write {self.stats_path} ({_reason(exc)})")
+        stats.interval_start = now
+        stats.lines = stats.review = stats.batches = stats.write_failures = 0
+        stats.latency.clear()
+
+
+def _reason(exc: OSError) -> str:
+    name = errno.errorcode.get(exc.errno or 0, "")
+    return f"{name}: {exc.strerror}" if name and exc.strerror else str(exc)
+
+
+def _file_signature(path: str) -> tuple | None:
+    """(inode, size, mtime) to notice a replaced or rewritten model file; None if it is missing."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+
+def _size(path: str) -> int:
+    try:
+        return os.stat(path).st_size
+    except OSError:
+        return 0
+
+
+def run(config: WatchConfig, log: Log = stderr_log) -> int:
+    """Run the daemon in the foreground until SIGTERM/SIGINT; returns the exit code."""
+    return Daemon(config, log).run()
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``python -m streamtag.daemon --config FILE``: the daemon without the rest of the CLI."""
+    parser = argparse.ArgumentParser(prog="python -m streamtag.daemon", description="follow files and tag new lines")
+    parser.add_argument("--config", metavar="FILE", help="TOML configuration (default: built-in defaults)")
+    args = parser.parse_args(argv)
+    try:
+        config = load_watch_config(args.config, {})
+    except StreamtagError as exc:
+        sys.stderr.write(f"streamtag: {exc}\n")
+        return exc.exit_code
+    return run(config)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
