@@ -1,0 +1,508 @@
+"""Linear-chain CRF maths on flat token batches: decoding, marginals, span probabilities, NLL + gradient.
+
+Model: p(y | x) = exp(score(y)) / Z with
+    score(y) = start[y_0] + sum_t E[t, y_t] + sum_{t>0} trans[y_{t-1}, y_t] + end[y_last].
+
+Every batch function takes emissions ``E`` of shape (N, L) for all tokens of B sequences concatenated and
+``lengths`` (B,). Lengths may be 0: an empty sequence has one (empty) path, score 0 and log Z = 0.
+
+Internally the batch is put in a time-major *packed* layout (sequences sorted by decreasing length, the
+rows of time step t are the n_t sequences still running, in that order), so the recursions loop over
+time steps only and every step is vectorised over the batch. Nothing is padded, so one long line in a
+batch of short ones costs no memory.
+
+Forbidden BIO moves are -inf in the masked matrices (see `apply_mask`); trainable parameters never hold
+-inf. No function here produces NaN for -inf inputs.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import numpy as np
+
+# A scaled sum of exponentials below this may have lost relative precision (sub-normal range) or
+# underflowed to 0; such rows are recomputed with an exact (slower) log-sum-exp.
+_TINY = 1e-290
+# exp() of more than this overflows float64 (log(max float) is about 709.8).
+_EXP_LIMIT = 700.0
+
+
+class ForwardBackward(NamedTuple):
+    """Result of `forward_backward`; all in log space, flat token layout.
+
+    log_alpha (N, L): log of the summed score of all prefixes ending in label j at token t, E[t] included.
+    log_beta (N, L): log of the summed score of all suffixes after token t given label j there
+        (E[t] excluded, end included), so log_alpha + log_beta - log_z = log marginal.
+    log_z (B,): log partition function per sequence (0 for an empty sequence).
+    lengths (B,): the sequence lengths, kept so marginals can be computed from this alone.
+    """
+
+    log_alpha: np.ndarray
+    log_beta: np.ndarray
+    log_z: np.ndarray
+    lengths: np.ndarray
+
+
+# ----------------------------------------------------------------------------------------------------
+# Label constraints
+
+
+def bio_allowed(labels: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Allowed moves of the BIO scheme (IOB2).
+
+    labels: L strings such as "O", "B-host", "I-host". A label without a "B-"/"I-" prefix counts as
+    outside. Forbidden: O -> I-X, B-X -> I-Y and I-X -> I-Y for X != Y, and starting with I-X.
+    Returns allowed_trans (L, L) bool indexed [prev, next] and allowed_start (L,) bool.
+    """
+    n = len(labels)
+    inside_type = [label[2:] if label.startswith("I-") else None for label in labels]
+    chunk_type = [label[2:] if label.startswith(("B-", "I-")) else None for label in labels]
+    allowed_trans = np.ones((n, n), dtype=bool)
+    allowed_start = np.ones(n, dtype=bool)
+    for nxt, entity in enumerate(inside_type):
+        if entity is None:
+            continue
+        # I-X may only continue a chunk of the same type (common practice: IOB2 chunk rules).
+        allowed_start[nxt] = False
+        for prev in range(n):
+            allowed_trans[prev, nxt] = chunk_type[prev] == entity
+    return allowed_trans, allowed_start
+
+
+def apply_mask(
+    trans: np.ndarray, start: np.ndarray, allowed_trans: np.ndarray, allowed_start: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Copies of trans (L, L) and start (L,) with -inf where the move is not allowed."""
+    trans_m = np.where(allowed_trans, np.asarray(trans, dtype=np.float64), -np.inf)
+    start_m = np.where(allowed_start, np.asarray(start, dtype=np.float64), -np.inf)
+    return trans_m, start_m
+
+
+# ----------------------------------------------------------------------------------------------------
+# Packed layout
+
+
+class _Packing:
+    """Index maps between the flat token layout and the time-major packed layout.
+
+    Packed row step_start[t] + r holds time step t of the r-th longest sequence (stable order), for
+    r < batch_sizes[t]. Because lengths are sorted in decreasing order, the rows of step t are a prefix
+    of the rows of step t-1, so step t's predecessors are rows step_start[t-1] + r.
+    """
+
+    def __init__(self, lengths: np.ndarray, n_tokens: int | None = None):
+        lengths = np.asarray(lengths)
+        if lengths.ndim != 1:
+            raise ValueError(f"lengths must be one-dimensional, got shape {lengths.shape}")
+        lengths = lengths.astype(np.int64, copy=False)
+        if lengths.size and lengths.min() < 0:
+            raise ValueError("lengths must be non-negative")
+        n_seqs = lengths.size
+        total = int(lengths.sum())
+        if n_tokens is not None and n_tokens != total:
+            raise ValueError(f"lengths sum to {total} but there are {n_tokens} tokens")
+        self.lengths = lengths
+        self.n_tokens = total
+        self.offsets = np.zeros(n_seqs, dtype=np.int64)
+        if n_seqs:
+            np.cumsum(lengths[:-1], out=self.offsets[1:])
+        self.max_len = int(lengths.max()) if n_seqs else 0
+        order = np.argsort(-lengths, kind="stable")
+        rank = np.empty(n_seqs, dtype=np.int64)
+        rank[order] = np.arange(n_seqs)
+        counts = np.bincount(lengths, minlength=self.max_len + 1)
+        self.batch_sizes = n_seqs - np.cumsum(counts)[: self.max_len]  # (T,) sequences longer than t
+        self.step_start = np.zeros(self.max_len + 1, dtype=np.int64)
+        np.cumsum(self.batch_sizes, out=self.step_start[1:])
+        self.seq_of_token = np.repeat(np.arange(n_seqs), lengths)
+        position = np.arange(total) - self.offsets[self.seq_of_token]
+        self.packed_of_flat = self.step_start[position] + rank[self.seq_of_token]
+        self.flat_of_packed = np.empty(total, dtype=np.int64)
+        self.flat_of_packed[self.packed_of_flat] = np.arange(total)
+        self.nonempty = lengths > 0
+        self.first_flat = self.offsets[self.nonempty]
+        self.last_flat = self.offsets[self.nonempty] + lengths[self.nonempty] - 1
+        self.last_packed = self.packed_of_flat[self.last_flat]
+
+    def rows(self, t: int, count: int | None = None) -> slice:
+        """Packed rows of time step t (the first `count` of them if given)."""
+        begin = int(self.step_start[t])
+        return slice(begin, begin + int(self.batch_sizes[t] if count is None else count))
+
+
+def _check_inputs(E: np.ndarray, lengths: np.ndarray, trans: np.ndarray) -> tuple[np.ndarray, _Packing]:
+    E = np.asarray(E, dtype=np.float64)
+    if E.ndim != 2:
+        raise ValueError(f"emissions must be (N, L), got shape {E.shape}")
+    if np.shape(trans) != (E.shape[1], E.shape[1]):
+        raise ValueError(f"transitions must be ({E.shape[1]}, {E.shape[1]}), got {np.shape(trans)}")
+    return E, _Packing(lengths, E.shape[0])
+
+
+# ----------------------------------------------------------------------------------------------------
+# Log-sum-exp helpers
+
+
+def _row_max(values: np.ndarray) -> np.ndarray:
+    """Max over the last axis, keepdims, with 0 where the whole row is -inf (so x - max is never NaN)."""
+    peak = values.max(axis=-1, keepdims=True)
+    return np.where(np.isfinite(peak), peak, 0.0)
+
+
+def _logsumexp(values: np.ndarray, axis: int = -1) -> np.ndarray:
+    """log(sum(exp(values))) along axis; -inf (not NaN) where every entry is -inf."""
+    moved = np.moveaxis(values, axis, -1)
+    peak = _row_max(moved)
+    with np.errstate(divide="ignore"):
+        return np.log(np.exp(moved - peak).sum(axis=-1)) + peak[..., 0]
+
+
+class _ExpMatrix:
+    """exp(M - shift) for a (L, L) matrix holding -inf entries, shift = max finite entry."""
+
+    def __init__(self, matrix: np.ndarray):
+        finite = matrix[np.isfinite(matrix)]
+        self.log = np.ascontiguousarray(matrix)
+        self.shift = float(finite.max()) if finite.size else 0.0
+        self.exp = np.exp(self.log - self.shift)
+
+
+def _log_matmul_exp(values: np.ndarray, matrix: _ExpMatrix) -> np.ndarray:
+    """out[r, j] = log sum_i exp(values[r, i] + matrix[i, j]); (n, L) x (L, L) -> (n, L).
+
+    One small matrix product per call: log(exp(v - max v) @ exp(M - max M)) + max v + max M. Rows whose
+    scaled sums fall into the sub-normal range (possible only with extreme score gaps or -inf inputs)
+    are recomputed exactly, so the result is exact to rounding everywhere.
+    """
+    peak = _row_max(values)
+    sums = np.exp(values - peak) @ matrix.exp
+    with np.errstate(divide="ignore"):
+        out = np.log(sums)
+    out += peak + matrix.shift
+    suspect = (sums < _TINY).any(axis=1)
+    if suspect.any():
+        out[suspect] = _logsumexp(values[suspect][:, :, None] + matrix.log[None], axis=1)
+    return out
+
+
+# ----------------------------------------------------------------------------------------------------
+# Forward-backward
+
+
+def _forward_packed(Ep: np.ndarray, pk: _Packing, trans: _ExpMatrix, start: np.ndarray) -> np.ndarray:
+    """log alpha (N, L) in packed layout."""
+    alpha = np.empty_like(Ep)
+    if pk.max_len == 0:
+        return alpha
+    first = pk.rows(0)
+    alpha[first] = start + Ep[first]
+    for t in range(1, pk.max_len):
+        cur = pk.rows(t)
+        prev = pk.rows(t - 1, pk.batch_sizes[t])
+        alpha[cur] = _log_matmul_exp(alpha[prev], trans) + Ep[cur]
+    return alpha
+
+
+def _backward_packed(Ep: np.ndarray, pk: _Packing, trans_t: _ExpMatrix, end: np.ndarray) -> np.ndarray:
+    """log beta (N, L) in packed layout; trans_t is the transposed transition matrix."""
+    beta = np.empty_like(Ep)
+    beta[pk.last_packed] = end
+    for t in range(pk.max_len - 1, 0, -1):
+        cur = pk.rows(t)
+        prev = pk.rows(t - 1, pk.batch_sizes[t])
+        beta[prev] = _log_matmul_exp(Ep[cur] + beta[cur], trans_t)
+    return beta
+
+
+def _forward_backward(E: np.ndarray, pk: _Packing, trans, start, end) -> ForwardBackward:
+    trans = np.asarray(trans, dtype=np.float64)
+    end = np.asarray(end, dtype=np.float64)
+    Ep = E[pk.flat_of_packed]
+    alpha = _forward_packed(Ep, pk, _ExpMatrix(trans), np.asarray(start, dtype=np.float64))
+    beta = _backward_packed(Ep, pk, _ExpMatrix(trans.T), end)
+    log_z = np.zeros(pk.lengths.size)
+    log_z[pk.nonempty] = _logsumexp(alpha[pk.last_packed] + end)
+    return ForwardBackward(alpha[pk.packed_of_flat], beta[pk.packed_of_flat], log_z, pk.lengths)
+
+
+def forward_backward(E, lengths, trans, start, end) -> ForwardBackward:
+    """Forward-backward in log space.
+
+    E (N, L) emissions, lengths (B,), trans (L, L) [prev, next], start (L,), end (L,) (masked: -inf at
+    forbidden moves). Returns ForwardBackward(log_alpha (N, L), log_beta (N, L), log_z (B,), lengths).
+    """
+    E, pk = _check_inputs(E, lengths, trans)
+    return _forward_backward(E, pk, trans, start, end)
+
+
+def token_marginals(fb: ForwardBackward) -> np.ndarray:
+    """P(y_t = j | x) as (N, L); each row sums to 1.
+
+    A sequence with no path of finite score (log Z = -inf, only possible with -inf emissions) gets
+    all-zero rows rather than NaN.
+    """
+    seq_of_token = np.repeat(np.arange(fb.lengths.size), fb.lengths)
+    log_z = fb.log_z[seq_of_token]
+    log_z = np.where(np.isfinite(log_z), log_z, np.inf)  # exp(x - inf) = 0 instead of NaN
+    marginals = np.exp(fb.log_alpha + fb.log_beta - log_z[:, None])
+    totals = marginals.sum(axis=1, keepdims=True)
+    # Renormalise away the rounding drift of long sequences so rows sum to 1 to the last bit or two.
+    np.divide(marginals, totals, out=marginals, where=totals > 0)
+    return marginals
+
+
+# ----------------------------------------------------------------------------------------------------
+# Viterbi and n-best
+
+
+def viterbi(E, lengths, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
+    """Best label sequence of each sequence.
+
+    E (N, L), lengths (B,), trans (L, L), start (L,), end (L,) (masked). Returns labels (N,) int64 and
+    scores (B,) (0 for an empty sequence, -inf if no path has a finite score). Ties go to the lowest
+    label index, so the result is deterministic.
+    """
+    E, pk = _check_inputs(E, lengths, trans)
+    trans_t = np.ascontiguousarray(np.asarray(trans, dtype=np.float64).T)  # [next, prev]
+    Ep = E[pk.flat_of_packed]
+    delta = np.empty_like(Ep)
+    back = np.empty(Ep.shape, dtype=np.intp)
+    if pk.max_len:
+        first = pk.rows(0)
+        delta[first] = np.asarray(start, dtype=np.float64) + Ep[first]
+    for t in range(1, pk.max_len):
+        cur = pk.rows(t)
+        prev = pk.rows(t - 1, pk.batch_sizes[t])
+        candidates = delta[prev][:, None, :] + trans_t[None]  # (n, next, prev)
+        best_prev = candidates.argmax(axis=2)
+        back[cur] = best_prev
+        delta[cur] = np.take_along_axis(candidates, best_prev[:, :, None], axis=2)[:, :, 0] + Ep[cur]
+    final = delta[pk.last_packed] + np.asarray(end, dtype=np.float64)
+    labels = np.empty(pk.n_tokens, dtype=np.intp)
+    labels[pk.last_packed] = final.argmax(axis=1)
+    scores = np.zeros(pk.lengths.size)
+    scores[pk.nonempty] = final.max(axis=1) if final.size else 0.0
+    for t in range(pk.max_len - 2, -1, -1):
+        nxt = pk.rows(t + 1)
+        count = nxt.stop - nxt.start
+        labels[pk.rows(t, count)] = back[nxt][np.arange(count), labels[nxt]]
+    return labels[pk.packed_of_flat].astype(np.int64), scores
+
+
+def _top_k(candidates: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """k largest entries along the last axis, best first; ties go to the lowest index.
+
+    candidates (..., M) is overwritten. Returns values (..., k) and indices (..., k). Repeated argmax
+    (k passes) is cheaper than a sort for the small k used here and gives a deterministic order.
+    """
+    values = np.empty(candidates.shape[:-1] + (k,))
+    indices = np.empty(candidates.shape[:-1] + (k,), dtype=np.intp)
+    for rank in range(k):
+        best = candidates.argmax(axis=-1)[..., None]
+        values[..., rank] = np.take_along_axis(candidates, best, axis=-1)[..., 0]
+        indices[..., rank] = best[..., 0]
+        np.put_along_axis(candidates, best, -np.inf, axis=-1)
+    return values, indices
+
+
+def nbest(E, lengths, trans, start, end, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """The k best label sequences of each sequence (list Viterbi, exact).
+
+    E (N, L), lengths (B,), trans (L, L), start (L,), end (L,) (masked), k >= 1.
+    Returns labels (k, N) int64, row m holding the (m+1)-th best path (-1 on the tokens of a sequence
+    with fewer than m+1 paths of finite score), and scores (B, k) best first (-inf where no such path).
+    An empty sequence has one path (score 0). Ties are broken by label index, deterministically.
+    """
+    if int(k) < 1:
+        raise ValueError(f"k must be at least 1, got {k}")
+    k = int(k)
+    E, pk = _check_inputs(E, lengths, trans)
+    n_labels = E.shape[1]
+    trans = np.asarray(trans, dtype=np.float64)
+    # trans_k[next, prev * k + r] = trans[prev, next]: one column per (previous label, rank) state.
+    trans_k = np.repeat(trans.T, k, axis=1)
+    Ep = E[pk.flat_of_packed]
+    delta = np.full(Ep.shape + (k,), -np.inf)
+    back = np.zeros(Ep.shape + (k,), dtype=np.intp)
+    if pk.max_len:
+        first = pk.rows(0)
+        delta[first, :, 0] = np.asarray(start, dtype=np.float64) + Ep[first]
+    for t in range(1, pk.max_len):
+        cur = pk.rows(t)
+        prev = pk.rows(t - 1, pk.batch_sizes[t])
+        count = cur.stop - cur.start
+        candidates = delta[prev].reshape(count, 1, n_labels * k) + trans_k[None]  # (n, next, prev*k)
+        values, back[cur] = _top_k(candidates, k)
+        delta[cur] = values + Ep[cur][:, :, None]
+    final = delta[pk.last_packed].reshape(-1, n_labels * k) + np.repeat(np.asarray(end, np.float64), k)
+    final_scores, final_states = _top_k(final, k)
+    scores = np.full((pk.lengths.size, k), -np.inf)
+    scores[:, 0] = 0.0
+    scores[pk.nonempty] = final_scores
+    # state = label * k + rank of the partial path at that label; walk back through the pointers.
+    states = np.empty((pk.n_tokens, k), dtype=np.intp)
+    states[pk.last_packed] = final_states
+    for t in range(pk.max_len - 2, -1, -1):
+        nxt = pk.rows(t + 1)
+        count = nxt.stop - nxt.start
+        pointers = back[nxt].reshape(count, n_labels * k)
+        states[pk.rows(t, count)] = pointers[np.arange(count)[:, None], states[nxt]]
+    labels = (states[pk.packed_of_flat] // k).T.astype(np.int64)
+    labels[~np.isfinite(scores[pk.seq_of_token]).T] = -1
+    return labels, scores
+
+
+# ----------------------------------------------------------------------------------------------------
+# Span probability
+
+
+def span_log_prob(fb: ForwardBackward, E, lengths, trans, end, seq, first, stop, b_label, i_label) -> np.ndarray:
+    """log P(tokens first..stop-1 of sequence seq form exactly one chunk), vectorised over S spans.
+
+    The event: y_first = B-X, y_first+1 .. y_stop-1 = I-X, and y_stop != I-X (or stop is the end of the
+    sequence). fb from `forward_backward` on the same E (N, L), lengths (B,), masked trans (L, L) and
+    end (L,). seq, first, stop: (S,) ints with 0 <= first < stop <= lengths[seq]; b_label, i_label: label
+    indices of B-X and I-X, scalars or (S,). Returns (S,) log probabilities (-inf for impossible spans).
+    Equals forward-backward with those tokens clamped: alpha at first, the chain of I-X scores, then the
+    sum over the label after the span (or end), minus log Z.
+    """
+    E = np.asarray(E, dtype=np.float64)
+    trans = np.asarray(trans, dtype=np.float64)
+    end = np.asarray(end, dtype=np.float64)
+    lengths = np.asarray(lengths, dtype=np.int64)
+    seq, first, stop = (np.atleast_1d(np.asarray(a, dtype=np.int64)) for a in (seq, first, stop))
+    seq, first, stop = np.broadcast_arrays(seq, first, stop)
+    b_label = np.broadcast_to(np.asarray(b_label, dtype=np.int64), seq.shape)
+    i_label = np.broadcast_to(np.asarray(i_label, dtype=np.int64), seq.shape)
+    n_spans = seq.size
+    if n_spans == 0:
+        return np.zeros(0)
+    if seq.min() < 0 or seq.max() >= lengths.size:
+        raise ValueError("span sequence index out of range")
+    if (first < 0).any() or (stop <= first).any() or (stop > lengths[seq]).any():
+        raise ValueError("spans must satisfy 0 <= first < stop <= sequence length")
+    offsets = np.concatenate(([0], np.cumsum(lengths)[:-1])) if lengths.size else lengths
+    first_token = offsets[seq] + first
+    log_prob = fb.log_alpha[first_token, b_label]
+
+    # Tokens inside the span after the first: emissions of I-X plus the B->I and I->I moves.
+    n_inside = stop - first - 1
+    span_of_inside = np.repeat(np.arange(n_spans), n_inside)
+    inside_start = np.cumsum(n_inside) - n_inside
+    inside_token = first_token[span_of_inside] + 1 + np.arange(span_of_inside.size) - inside_start[span_of_inside]
+    inside_emission = np.bincount(
+        span_of_inside, weights=E[inside_token, i_label[span_of_inside]], minlength=n_spans
+    )
+    has_inside = n_inside > 0
+    log_prob[has_inside] += trans[b_label, i_label][has_inside] + inside_emission[has_inside]
+    repeated = n_inside > 1
+    log_prob[repeated] += (n_inside[repeated] - 1) * trans[i_label, i_label][repeated]
+
+    # After the span: the sequence ends, or the next label is anything but I-X.
+    last_label = np.where(has_inside, i_label, b_label)
+    at_end = stop == lengths[seq]
+    log_prob[at_end] += end[last_label[at_end]]
+    inner = ~at_end
+    if inner.any():
+        next_token = offsets[seq[inner]] + stop[inner]
+        following = trans[last_label[inner]] + E[next_token] + fb.log_beta[next_token]
+        following[np.arange(following.shape[0]), i_label[inner]] = -np.inf
+        log_prob[inner] += _logsumexp(following)
+    log_z = fb.log_z[seq]
+    return np.where(np.isfinite(log_z), log_prob - np.where(np.isfinite(log_z), log_z, 0.0), -np.inf)
+
+
+# ----------------------------------------------------------------------------------------------------
+# Training objective
+
+
+def _expected_pair_counts(
+    fb: ForwardBackward, E: np.ndarray, pk: _Packing, trans: np.ndarray, token_weight: np.ndarray
+) -> np.ndarray:
+    """sum over adjacent pairs of weight * P(y_t-1 = i, y_t = j | x) as (L, L).
+
+    P(i, j) = exp(alpha[t-1, i] + trans[i, j] + E[t, j] + beta[t, j] - log Z). Factored as
+    exp(alpha - a) (x) exp(E + beta - g) * exp(trans - shift) * exp(a + g + shift - log Z) with row
+    maxima a, g, so all pairs reduce to one (L, P) @ (P, L) product. The last factor is at least
+    1 / L^2; a pair whose factor would overflow (extreme score gaps) is summed exactly instead.
+    """
+    is_prev = np.ones(pk.n_tokens, dtype=bool)
+    is_prev[pk.last_flat] = False
+    prev = np.flatnonzero(is_prev)
+    nxt = prev + 1
+    alpha = fb.log_alpha[prev]
+    after = E[nxt] + fb.log_beta[nxt]
+    log_z = fb.log_z[pk.seq_of_token[prev]]
+    matrix = _ExpMatrix(trans)
+    alpha_peak = _row_max(alpha)
+    after_peak = _row_max(after)
+    exponent = alpha_peak[:, 0] + after_peak[:, 0] + matrix.shift - log_z
+    exact = ~(exponent <= _EXP_LIMIT)  # also catches NaN from an impossible sequence (log Z = -inf)
+    pair_weight = token_weight[prev] * np.exp(np.where(exact, 0.0, exponent))
+    pair_weight[exact] = 0.0
+    counts = ((np.exp(alpha - alpha_peak) * pair_weight[:, None]).T @ np.exp(after - after_peak)) * matrix.exp
+    rows = np.flatnonzero(exact & np.isfinite(log_z))
+    if rows.size:
+        log_pairs = alpha[rows][:, :, None] + trans[None] + after[rows][:, None, :] - log_z[rows][:, None, None]
+        counts += np.einsum("p,pij->ij", token_weight[prev][rows], np.exp(log_pairs))
+    return counts
+
+
+def nll_and_grad(E, gold, lengths, trans, start, end, weights=None):
+    """Weighted negative log-likelihood of the gold labels and its gradients.
+
+    E (N, L) emissions, gold (N,) label indices, lengths (B,), trans (L, L), start (L,), end (L,) masked
+    (-inf at forbidden moves), weights (B,) or None for all ones.
+    Returns (nll, dE (N, L), dtrans (L, L), dstart (L,), dend (L,)) where
+    nll = sum_b w_b (log Z_b - score_b(gold)), dE = w * (marginals - onehot(gold)),
+    dtrans = weighted expected pair counts - weighted gold pair counts, and likewise for start and end.
+    Gradients at forbidden (-inf) entries are exactly 0. Raises ValueError if the gold labels take a
+    forbidden move (their probability is 0).
+    """
+    E, pk = _check_inputs(E, lengths, trans)
+    n_tokens, n_labels = E.shape
+    trans = np.asarray(trans, dtype=np.float64)
+    start = np.asarray(start, dtype=np.float64)
+    end = np.asarray(end, dtype=np.float64)
+    gold = np.asarray(gold, dtype=np.int64)
+    if gold.shape != (n_tokens,):
+        raise ValueError(f"gold must be ({n_tokens},), got {gold.shape}")
+    if n_tokens and (gold.min() < 0 or gold.max() >= n_labels):
+        raise ValueError("gold label index out of range")
+    seq_weight = np.ones(pk.lengths.size) if weights is None else np.asarray(weights, dtype=np.float64)
+    if seq_weight.shape != pk.lengths.shape:
+        raise ValueError(f"weights must be ({pk.lengths.size},), got {seq_weight.shape}")
+    token_weight = seq_weight[pk.seq_of_token]
+
+    fb = _forward_backward(E, pk, trans, start, end)
+    marginals = token_marginals(fb)
+
+    is_prev = np.ones(n_tokens, dtype=bool)
+    is_prev[pk.last_flat] = False
+    prev = np.flatnonzero(is_prev)
+    gold_first, gold_last = gold[pk.first_flat], gold[pk.last_flat]
+    gold_score = np.zeros(pk.lengths.size)  # bincount of nothing would be int64
+    gold_score += np.bincount(pk.seq_of_token, weights=E[np.arange(n_tokens), gold], minlength=pk.lengths.size)
+    gold_score += np.bincount(
+        pk.seq_of_token[prev], weights=trans[gold[prev], gold[prev + 1]], minlength=pk.lengths.size
+    )
+    gold_score[pk.nonempty] += start[gold_first] + end[gold_last]
+    if not np.isfinite(gold_score).all():
+        raise ValueError("a gold label sequence takes a forbidden move or has a -inf score")
+    nll = float(np.dot(seq_weight, fb.log_z - gold_score))
+
+    d_emission = marginals * token_weight[:, None]
+    d_emission[np.arange(n_tokens), gold] -= token_weight
+    seq_w = seq_weight[pk.nonempty]
+    d_start = seq_w @ marginals[pk.first_flat] - np.bincount(gold_first, weights=seq_w, minlength=n_labels)
+    d_end = seq_w @ marginals[pk.last_flat] - np.bincount(gold_last, weights=seq_w, minlength=n_labels)
+    gold_pairs = np.bincount(
+        gold[prev] * n_labels + gold[prev + 1], weights=token_weight[prev], minlength=n_labels * n_labels
+    ).reshape(n_labels, n_labels)
+    d_trans = _expected_pair_counts(fb, E, pk, trans, token_weight) - gold_pairs
+    # Forbidden entries get exactly zero (the expected counts there are already 0, gold counts too).
+    d_trans[~np.isfinite(trans)] = 0.0
+    d_start[~np.isfinite(start)] = 0.0
+    d_end[~np.isfinite(end)] = 0.0
+    return nll, d_emission, d_trans, d_start, d_end
