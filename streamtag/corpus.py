@@ -41,6 +41,7 @@ SCHEMES = ("auto", "iob1", "iob2")
 MAX_KEPT_ERRORS = 20  # messages of skipped records kept for the user; the count is exact anyway
 _SPACES = re.compile(r" +")
 _DOCUMENT_START = "-DOCSTART-"
+_SPACE_TOKEN_KIND = "symbol"  # the tokenizer's kind for any other non-space character
 
 
 @dataclass
@@ -67,6 +68,7 @@ class ReadStats:
     misaligned: int = 0  # character spans whose boundary cuts a token, or that overlap no token
     repaired: int = 0  # stray I-X (no B-X/I-X before it) turned into B-X
     converted: int = 0  # chunk-initial I-X of an IOB1 file turned into B-X
+    space_tokens: int = 0  # column-file tokens that are only white space (e.g. U+3000)
     scheme: str | None = None  # tagging scheme of a column file: "iob1" or "iob2"
     errors: list[str] = field(default_factory=list)  # first MAX_KEPT_ERRORS skip messages
 
@@ -256,6 +258,19 @@ def _column_sentences(path: Path, tag_column: int) -> Iterator[_ColumnSentence]:
         yield current
 
 
+def _column_kinds(texts: list[str], stats: ReadStats) -> list[str]:
+    """Token kinds; a white-space token (tab-separated corpora can hold one, e.g. U+3000) gets the
+    tokenizer's catch-all kind "symbol", since ``token_kind`` only takes non-space tokens."""
+    kinds = []
+    for token in texts:
+        if token.isspace():
+            stats.space_tokens += 1
+            kinds.append(_SPACE_TOKEN_KIND)
+        else:
+            kinds.append(token_kind(token))
+    return kinds
+
+
 def _b_tags_after_outside(tags: list[str]) -> int:
     """B-X tags that do not directly follow a B-X/I-X of the same type."""
     previous, count = OUTSIDE, 0
@@ -293,11 +308,7 @@ def read_conll(
         b_after_outside += _b_tags_after_outside(collected.tags)
         entity_tags += sum(tag != OUTSIDE for tag in collected.tags)
         sentences.append(
-            Sentence(
-                texts=collected.texts,
-                kinds=[token_kind(token) for token in collected.texts],
-                tags=repair_bio(collected.tags),
-            )
+            Sentence(texts=collected.texts, kinds=_column_kinds(collected.texts, stats), tags=repair_bio(collected.tags))
         )
         stats.records += 1
         stats.tokens += len(collected.texts)
