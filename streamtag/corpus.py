@@ -27,6 +27,7 @@ from pathlib import Path
 
 import orjson
 
+from streamtag.checkpoint import fsync_directory
 from streamtag.errors import DataError
 from streamtag.spans import (
     OUTSIDE,
@@ -115,6 +116,10 @@ def _is_int(value: object) -> bool:
     return isinstance(value, int) and not isinstance(value, bool)
 
 
+def _is_weight(value: object) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) and value >= 0
+
+
 def _parse_span(span: object, text_length: int) -> tuple[int, int, str]:
     if not isinstance(span, dict):
         raise _BadRecord("a span is not an object")
@@ -149,9 +154,7 @@ def _parse_record(line: str) -> tuple[str, list[tuple[int, int, str]], float]:
         if start < previous_end:
             raise _BadRecord(f"spans overlap at character {start}")
     weight = record.get("weight", 1.0)
-    if not (isinstance(weight, (int, float)) and not isinstance(weight, bool)) or not (
-        math.isfinite(weight) and weight >= 0
-    ):
+    if not _is_weight(weight):
         raise _BadRecord('"weight" must be a finite number >= 0')
     return text, spans, float(weight)
 
@@ -364,7 +367,7 @@ def _example_record(example, index: int, path: Path) -> bytes:
         if not isinstance(text, str):
             raise _BadRecord("text is not a string")
         record_spans = [_parse_span({"start": s, "end": e, "label": label}, len(text)) for s, e, label in spans]
-        if not (isinstance(weight, (int, float)) and math.isfinite(weight) and weight >= 0):
+        if not _is_weight(weight):
             raise _BadRecord("weight must be a finite number >= 0")
     except (_BadRecord, TypeError, ValueError) as exc:
         raise DataError(f"{path}: example {index}: {exc}") from None
@@ -398,26 +401,10 @@ def write_jsonl(path, examples: Iterable[tuple[str, list[tuple[int, int, str]], 
         os.chmod(temporary, 0o600)
         os.replace(temporary, path)
     except BaseException as exc:
-        try:
-            os.unlink(temporary)
-        except OSError:
-            pass
+        Path(temporary).unlink(missing_ok=True)
         if isinstance(exc, OSError):
             raise DataError(f"{path}: cannot write: {exc.strerror or exc}") from None
         raise
-    _fsync_directory(directory)
+    fsync_directory(directory)
     return count
 
-
-def _fsync_directory(directory: Path) -> None:
-    """Make the rename durable; some file systems cannot open directories, which is fine."""
-    try:
-        descriptor = os.open(directory, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(descriptor)
-    except OSError:
-        pass
-    finally:
-        os.close(descriptor)
