@@ -6,9 +6,10 @@ slots in both are filled from the invented world in `scenario`. Every (family, h
 triple is one line shape; `shape_count()` says how many there are.
 
 Spans are recorded while the string is composed, never found afterwards. Entity boundaries sit on
-token boundaries of a plain log tokenizer (split on white space, brackets, quotes, commas and '=';
-trailing '.', ',', ':', ';', '!' or '?' cut off): an address:port or a host:port is one token and one
-span; URLs and request paths are left unlabelled; a name followed by ':' or '.' is labelled without it.
+token boundaries both of `streamtag.tokenize` and of a plain log tokenizer (split on white space,
+brackets, quotes, commas and '='; trailing '.', ',', ':', ';', '!' or '?' cut off): an address:port or
+a host:port is one span; URLs and request paths are left unlabelled; a name followed by ':' or '.' is
+labelled without it; no name is glued to a possessive "'s".
 
 Determinism: only `random.Random` instances seeded from (split, seed) are used, and nothing iterates a
 set or relies on string hashing, so PYTHONHASHSEED does not change the output.
@@ -430,7 +431,7 @@ CHAT_MESSAGES: tuple[str, ...] = (
     "is {ip} one of ours? saw it hammering {service}",
     "{given} and {nhost} are both in {place} now",
     "the {place} office lost power, {host} and {host2} went with it",
-    "renamed {account} to {account2} per {given}'s ticket",
+    "renamed {account} to {account2} as {given} asked in the ticket",
     "{given} has the keys to the {place} server room",
     "handing over to {given_lc}, {nhost} still flapping",
     "did anyone touch {path} on {host}?",
@@ -629,6 +630,7 @@ class _Fragment:
     label: str | None
     in_body: bool          # noise only ever touches the message body, never the header fields
     json_escaped: bool     # text goes inside a JSON string
+    template_text: bool = False   # literal words of the template (not a filled-in value)
 
 
 def _json_escape(text: str) -> str:
@@ -640,7 +642,7 @@ def _template_fragments(template: str, ctx: _Context, in_body: bool, json_escape
     fragments: list[_Fragment] = []
     for kind, value in _compile(template):
         if kind == "lit":
-            fragments.append(_Fragment(value, None, in_body, json_escaped))
+            fragments.append(_Fragment(value, None, in_body, json_escaped, template_text=True))
         elif value == MSG and body is not None:
             fragments += _template_fragments(body, ctx, True, json_escaped)
         else:
@@ -691,8 +693,9 @@ def _typo(word: str, rng: Random) -> str:
 
 def _add_typo(fragments: list[_Fragment], rng: Random) -> None:
     entity_ok = rng.random() < 0.3
+    # Template words and names may be misspelt; filled-in values such as URLs or timestamps are not.
     candidates = [f for f in fragments if f.in_body and _WORD_RE.search(f.text)
-                  and (f.label is None or (entity_ok and f.label in _TYPO_LABELS))]
+                  and (f.template_text or (entity_ok and f.label in _TYPO_LABELS))]
     if not candidates:
         return
     fragment = rng.choice(candidates)
@@ -713,13 +716,16 @@ def _odd_case(fragments: list[_Fragment], rng: Random) -> None:
 
 
 def _extra_space(fragments: list[_Fragment], rng: Random) -> None:
-    literals = [f for f in fragments if f.in_body and f.label is None and " " in f.text]
-    for fragment in literals:
+    literals = [f for f in fragments if f.in_body and f.template_text and " " in f.text]
+    widened = {rng.randrange(len(literals))} if literals else set()   # at least one gap grows
+    for index, fragment in enumerate(literals):
         # Inside a JSON string a tab becomes the two characters backslash-t, glued to the next word.
         gaps = ("  ", "   ") if fragment.json_escaped else ("  ", "   ", "\t")
         pieces = fragment.text.split(" ")
+        forced = rng.randrange(1, len(pieces)) if index in widened else -1
         fragment.text = pieces[0] + "".join(
-            (rng.choice(gaps) if rng.random() < 0.4 else " ") + piece for piece in pieces[1:])
+            (rng.choice(gaps) if number == forced or rng.random() < 0.4 else " ") + piece
+            for number, piece in enumerate(pieces[1:], start=1))
     if rng.random() < 0.5:
         fragments.append(_Fragment(" " * rng.randint(1, 3), None, False, False))
 
