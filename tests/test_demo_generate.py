@@ -89,7 +89,9 @@ def test_written_files_are_labelled_json_lines(tmp_path):
     paths = generate.write_demo_data(tmp_path / "out", n_train=50, n_dev=10, n_test=10, n_stream=30)
     records = [json.loads(line) for line in paths["train"].read_text(encoding="utf-8").splitlines()]
     assert len(records) == 50
-    assert all(set(record) == {"text", "spans"} for record in records)
+    assert all(set(record) <= {"text", "spans", "weight"} and "spans" in record for record in records)
+    assert [(r["text"], r["spans"]) for r in records] == [
+        (e["text"], e["spans"]) for e in generate.generate_split("train", 50, seed=7)]
     stream_lines = paths["stream"].read_text(encoding="utf-8").split("\n")
     assert stream_lines[-1] == "" and len(stream_lines) == 31
 

@@ -20,7 +20,6 @@ from __future__ import annotations
 import argparse
 import ipaddress
 import json
-import os
 import re
 import sys
 from dataclasses import dataclass, field
@@ -29,6 +28,10 @@ from pathlib import Path
 from random import Random
 from typing import Callable
 
+import orjson
+
+from streamtag.checkpoint import write_file_atomically
+from streamtag.corpus import write_jsonl
 from streamtag.demo import scenario as world
 from streamtag.errors import StreamtagError
 
@@ -868,22 +871,8 @@ def generate_stream(n: int, seed: int, doubtful_share: float = 0.1) -> list[dict
     return lines
 
 
-def _write_private(path: Path, content: str) -> None:
-    """Write atomically with mode 0600: the data looks like logs, and logs hold personal data."""
-    temporary = path.with_name(path.name + ".tmp")
-    descriptor = os.open(temporary, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-    try:
-        os.fchmod(descriptor, 0o600)
-        with os.fdopen(descriptor, "w", encoding="utf-8", newline="\n") as handle:
-            handle.write(content)
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
-    os.replace(temporary, path)
-
-
-def _jsonl(records: list[dict]) -> str:
-    return "".join(json.dumps(record, ensure_ascii=False) + "\n" for record in records)
+def _jsonl(records: list[dict]) -> bytes:
+    return b"".join(orjson.dumps(record) + b"\n" for record in records)
 
 
 def write_demo_data(out_dir, seed: int = 7, n_train: int = 4000, n_dev: int = 500, n_test: int = 1000,
@@ -896,12 +885,13 @@ def write_demo_data(out_dir, seed: int = 7, n_train: int = 4000, n_dev: int = 50
         paths = {}
         for split, count in (("train", n_train), ("dev", n_dev), ("test", n_test)):
             paths[split] = out / f"{split}.jsonl"
-            _write_private(paths[split], _jsonl(generate_split(split, count, seed)))
+            examples = generate_split_detailed(split, count, seed)
+            write_jsonl(paths[split], ((example.text, example.spans, 1.0) for example in examples))
         stream = generate_stream(n_stream, seed, doubtful_share)
         paths["stream"] = out / "stream.log"
-        _write_private(paths["stream"], "".join(line["text"] + "\n" for line in stream))
+        write_file_atomically(paths["stream"], "".join(line["text"] + "\n" for line in stream).encode("utf-8"))
         paths["stream_truth"] = out / "stream_truth.jsonl"
-        _write_private(paths["stream_truth"], _jsonl(
+        write_file_atomically(paths["stream_truth"], _jsonl(
             [{"line": number, "doubtful": line["doubtful"]} for number, line in enumerate(stream, 1)]))
     except OSError as error:
         raise StreamtagError(f"cannot write demo data to {out}: {error.strerror or error}") from None
