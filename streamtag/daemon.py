@@ -25,19 +25,19 @@ import queue
 import re
 import signal
 import sys
-import tempfile
 import threading
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
 import orjson
 
 from streamtag import records
+from streamtag.checkpoint import State, fsync_directory, load_state, recover_outputs, save_state, write_file_atomically
 from streamtag.config import WatchConfig, load_watch_config
-from streamtag.errors import ConfigError, StreamtagError
+from streamtag.errors import ConfigError, ModelError, StreamtagError
+from streamtag.follow import ChangeWatcher, Follower
 from streamtag.model import Model, default_model_path, load_model
 from streamtag.tagger import TaggedLine, Tagger
 
@@ -46,10 +46,12 @@ STATS_FILE = "stats.json"
 BACKOFF_FIRST_SECONDS = 0.1
 BACKOFF_CAP_SECONDS = 5.0
 MODEL_CHECK_SECONDS = 1.0
+HINT_QUEUE_SIZE = 64  # one pending hint is enough to wake the loop; the watcher drops the rest
 WAIT_SLICE_SECONDS = 0.1  # longest sleep between looks at the signal flags
 # A line is "binary" when more than this share of its characters are control characters or
 # replacement characters from broken UTF-8 (text logs have almost none).
 BINARY_SHARE = 0.3
+BINARY_MIN_CHARS = 16  # a shorter line is too little evidence: a few broken bytes are still text
 # Tagging a sample proves a new model's labels and feature spec work before it is swapped in.
 MODEL_PROBE_LINE = "sshd[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
 
@@ -124,7 +126,7 @@ def _sanitize(text: str, flags: list[str]) -> DecodedLine:
 
 
 def _is_binary(text: str, n_controls: int) -> bool:
-    if len(text) < 4:
+    if len(text) < BINARY_MIN_CHARS:
         return False
     suspicious = n_controls + text.count("\ufffd")
     return suspicious > BINARY_SHARE * len(text)
@@ -177,14 +179,6 @@ def _pop_dotted(document: dict, parts: list[str]) -> tuple[Any, dict]:
     return found, remaining
 
 
-def strip_newline(data: bytes) -> bytes:
-    if data.endswith(b"\n"):
-        data = data[:-1]
-    if data.endswith(b"\r"):
-        data = data[:-1]
-    return data
-
-
 # -- output files: append, fsync, cut back on failure --------------------------------------------
 
 
@@ -233,11 +227,13 @@ def _open_append(path: str, mode: int) -> int:
     """Open for append, creating the file (and its folder) private to the owner by default."""
     parent = os.path.dirname(os.path.abspath(path))
     os.makedirs(parent, mode=0o700, exist_ok=True)
+    existed = os.path.exists(path)
     fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT | os.O_CLOEXEC, mode)
-    # The umask may have taken bits away from a file we just created; a file that already exists
-    # keeps the mode its owner gave it.
-    if os.fstat(fd).st_size == 0:
+    if not existed:
+        # The umask may have taken bits from the configured mode; a file that already existed
+        # keeps the mode its owner gave it. The new name must survive a crash with the data.
         os.fchmod(fd, mode)
+        fsync_directory(parent)
     return fd
 
 
@@ -270,22 +266,6 @@ class BatchWriter:
     def close(self) -> None:
         self.output.close()
         self.review.close()
-
-
-def write_json_atomic(path: str, payload: dict, mode: int) -> None:
-    """Temp file, fsync, rename over, fsync the folder: readers see the old or the new file."""
-    directory = os.path.dirname(os.path.abspath(path))
-    fd, temporary = tempfile.mkstemp(prefix=".stats.", suffix=".tmp", dir=directory)
-    try:
-        os.fchmod(fd, mode)
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(orjson.dumps(payload, option=orjson.OPT_INDENT_2 | orjson.OPT_APPEND_NEWLINE))
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(temporary, path)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
 
 
 # -- latency and throughput statistics ------------------------------------------------------------
@@ -372,7 +352,7 @@ class Daemon:
         self.install_signals = install_signals
         self.stop_requested = False
         self.reload_requested = False
-        self.hints: queue.Queue = queue.Queue()
+        self.hints: queue.Queue = queue.Queue(maxsize=HINT_QUEUE_SIZE)
         self.state_path = os.path.join(config.state_dir, STATE_FILE)
         self.stats_path = os.path.join(config.state_dir, STATS_FILE)
         self.model_path = str(config.model_path) if config.model_path else str(default_model_path())
@@ -395,8 +375,6 @@ class Daemon:
     # -- start and stop ------------------------------------------------------------------------
 
     def _run(self) -> int:
-        from streamtag.checkpoint import load_state, recover_outputs
-        from streamtag.follow import ChangeWatcher, Follower
 
         config = self.config
         if not config.inputs:
@@ -422,7 +400,7 @@ class Daemon:
             clock=self.clock,
             on_warning=self.log,
         )
-        watcher = self._start_watcher(ChangeWatcher)
+        watcher = self._start_watcher()
         previous_handlers = self._install_signal_handlers()
         self.log(
             f"watching {len(config.inputs)} input pattern(s); model {self.tagger.model_id}; "
@@ -438,9 +416,9 @@ class Daemon:
             self.follower.close()
             self.writer.close()
 
-    def _start_watcher(self, watcher_class):
+    def _start_watcher(self) -> ChangeWatcher | None:
         try:
-            watcher = watcher_class(list(self.config.inputs), self.hints)
+            watcher = ChangeWatcher(list(self.config.inputs), self.hints, on_warning=self.log)
             watcher.start()
             return watcher
         except Exception as exc:  # e.g. inotify watch limit: polling still finds every change
@@ -597,8 +575,6 @@ class Daemon:
                 delay = min(delay * 2, BACKOFF_CAP_SECONDS)
 
     def _checkpoint(self) -> None:
-        from streamtag.checkpoint import State, save_state
-
         state = State(
             files=self.follower.snapshot(),
             output_bytes=self.writer.output.length,
@@ -617,9 +593,9 @@ class Daemon:
         """RawLines -> (output bytes, review bytes, number of review records)."""
         config = self.config
         if config.input_format == "json":
-            decoded = [decode_json(strip_newline(raw.data), config.text_field) for raw in raw_lines]
+            decoded = [decode_json(raw.data, config.text_field) for raw in raw_lines]
         else:
-            decoded = [decode_text(strip_newline(raw.data)) for raw in raw_lines]
+            decoded = [decode_text(raw.data) for raw in raw_lines]
         tagged = self._tag(decoded)
         model_id = self.tagger.model_id
         threshold = config.review_threshold
@@ -667,8 +643,6 @@ class Daemon:
         return self._probe(model)
 
     def _probe(self, model: Model) -> Tagger:
-        from streamtag.errors import ModelError
-
         try:
             tagger = Tagger(model, max_tokens=self.config.max_tokens, window_overlap=self.config.window_overlap)
             tagger.tag([MODEL_PROBE_LINE], review_below=self.config.review_threshold)
@@ -729,7 +703,7 @@ class Daemon:
             f"{payload['bytes_behind']} bytes behind, latency {latency}, model {payload['model']}"
         )
         try:
-            write_json_atomic(self.stats_path, payload, self.config.file_mode)
+            write_file_atomically(self.stats_path, orjson.dumps(payload, option=orjson.OPT_INDENT_2), self.config.file_mode)
         except OSError as exc:
             self.log(f"cannot write {self.stats_path} ({_reason(exc)})")
         stats.interval_start = now
