@@ -237,11 +237,14 @@ def compare(old: list[LineRecord], new: list[LineRecord], examples: int = 5) -> 
     result.models_new = {r.model for r in new if r.model}
     result.examples = {kind: [] for kind in EXAMPLE_KINDS}
 
-    def note(kind: str, key, record_old: LineRecord | None, record_new: LineRecord | None, text: str) -> None:
+    def note(kind: str, key, record_old: LineRecord | None, record_new: LineRecord | None, text: str,
+             new_spans_apply: bool = True) -> None:
+        """Keep an example; with different texts NEW's text is shown bare (its spans fit only it)."""
         if len(result.examples[kind]) < examples:
+            new_spans = record_new.spans if record_new and new_spans_apply else ()
             result.examples[kind].append(Example(
                 key, record_old.text if record_old else None, record_new.text if record_new else None,
-                record_old.spans if record_old else (), record_new.spans if record_new else (), text))
+                record_old.spans if record_old else (), new_spans, text))
 
     for key, record in old_keyed.items():
         if key not in new_keyed:
@@ -255,19 +258,11 @@ def compare(old: list[LineRecord], new: list[LineRecord], examples: int = 5) -> 
         before, after = old_keyed[key], new_keyed[key]
         if before.text != after.text:
             result.text_differs += 1
-            note("text differs", key, before, None, "")
-            result.examples["text differs"][-1:] = [
-                _with_new_text(e, after.text) for e in result.examples["text differs"][-1:] if e.key == key]
+            note("text differs", key, before, after, "", new_spans_apply=False)
             continue
         result.lines_compared += 1
         _count_line(result, key, before, after, note)
     return result
-
-
-def _with_new_text(example: Example, text: str) -> Example:
-    """A text-differs example shows NEW's text bare: NEW's spans belong to another text."""
-    example.new_text = text
-    return example
 
 
 def _sortable(key: tuple) -> tuple:
@@ -414,7 +409,8 @@ _BAR_COLOURS = {"added": "#2e9a4f", "removed": "#c8463c", "relabelled_from": "#e
 
 
 def _escape(text: object) -> str:
-    return html.escape(str(text), quote=True)
+    """Text for HTML: markup characters escaped, control characters shown as escapes, not passed on."""
+    return html.escape(_printable(str(text)), quote=True)
 
 
 def bar_chart_svg(result: Comparison) -> str:
@@ -472,7 +468,7 @@ def html_report(result: Comparison, old_path: str, new_path: str) -> str:
         out.append(f'<p class="warn">{_escape(line)}</p>')
     share = result.lines_changed / result.lines_compared * 100 if result.lines_compared else 0.0
     out.append(f"<p>{result.lines_compared:,} lines compared (matched by source and {_escape(result.key_mode)}); "
-               f"<b>{result.lines_changed:,}</b> changed ({share:.1f}%). Review: {result.to_review:,} now sent, "
+               f"<strong>{result.lines_changed:,}</strong> changed ({share:.1f}%). Review: {result.to_review:,} now sent, "
                f"{result.from_review:,} no longer sent.</p>")
     out.append("<h2>Spans per label</h2><table><tr><th>label</th>"
                + "".join(f'<th class="n">{_escape(c.replace("_", " "))}</th>' for c in LABEL_COLUMNS) + "</tr>")

@@ -239,7 +239,7 @@ def run_and_kill_midway(command: list[str], progress: Path, min_chunks: int) -> 
 
 
 def test_resume_after_sigkill_gives_the_uninterrupted_bytes(tmp_path, model_path):
-    archive = big_archive(tmp_path / "in", 6000)
+    archive = big_archive(tmp_path / "in", 3000)
     reference_out, reference_review = tmp_path / "ref.jsonl", tmp_path / "ref-review.jsonl"
     done = subprocess.run(replay_command(archive, model_path, reference_out, reference_review, "--workers", "2"),
                           cwd=REPO, capture_output=True)
