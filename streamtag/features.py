@@ -20,7 +20,8 @@ import tomllib
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from importlib import resources
-from itertools import chain, islice
+from itertools import chain, groupby, islice, repeat
+from operator import add
 from pathlib import Path
 
 import numpy as np
@@ -57,46 +58,64 @@ class _ShapeTable(dict):
 
     def __missing__(self, code: int) -> str:
         shape = _shape_char(chr(code))
-        self[code] = shape
+        if len(self) < 70_000:   # bounded: hostile input cannot grow it to all of Unicode
+            self[code] = shape
         return shape
 
 
 _SHAPE_TABLE = _ShapeTable()
-_RUNS = re.compile(r"(.)\1+", re.DOTALL)
 
 
 def word_shape(text: str) -> str:
-    """'Host' -> 'Xxxx', '2024' -> 'dddd', 'eth0:1' -> 'xxxd:d' (common practice word shape)."""
+    """'Host' -> 'Xxxx', '2024' -> 'dddd', 'eth0:1' -> 'xxxd:d' (common practice word shape).
+
+    One shape character per code point, so len(word_shape(t)) == len(t).
+    """
     return text.translate(_SHAPE_TABLE)
 
 
 def collapse_runs(shape: str) -> str:
     """'Xxxx' -> 'Xx', 'dddd' -> 'd', 'dd.dd' -> 'd.d': each run of one character becomes one."""
-    return _RUNS.sub(r"\1", shape)
+    # groupby is several times faster here than a back-referencing regex substitution
+    return "".join(char for char, _ in groupby(shape))
 
 
-# Character-class flags, computed from the text and its shape (the shape makes the class tests cheap:
-# 'X', 'x' and 'd' appear in a shape only as classes, never as literal characters).
-FLAGS: dict[str, Callable[[str, str], bool]] = {
-    "has_digit": lambda text, shape: "d" in shape,
-    "all_digit": lambda text, shape: not shape.strip("d"),
-    "has_alpha": lambda text, shape: "X" in shape or "x" in shape,
-    "has_upper": lambda text, shape: "X" in shape,
-    "has_lower": lambda text, shape: "x" in shape,
-    "all_upper": lambda text, shape: text.isupper(),
-    "all_lower": lambda text, shape: text.islower(),
-    "title": lambda text, shape: text.istitle(),
-    "initial_upper": lambda text, shape: shape[:1] == "X",
-    "mixed_alnum": lambda text, shape: "d" in shape and ("X" in shape or "x" in shape),
-    "no_alnum": lambda text, shape: not ("d" in shape or "X" in shape or "x" in shape),
-    "has_dash": lambda text, shape: "-" in text,
-    "has_dot": lambda text, shape: "." in text,
-    "has_underscore": lambda text, shape: "_" in text,
-    "has_slash": lambda text, shape: "/" in text,
-    "has_colon": lambda text, shape: ":" in text,
-    "has_at": lambda text, shape: "@" in text,
-    "has_equals": lambda text, shape: "=" in text,
+# Character-class flags. Most are functions of the word shape alone ('X', 'x' and 'd' appear in a shape
+# only as classes, other characters literally), which lets the extractor cache them per shape; the
+# three that follow Python's str case predicates need the text itself.
+SHAPE_FLAGS: dict[str, Callable[[str], bool]] = {
+    "has_digit": lambda shape: "d" in shape,
+    "all_digit": lambda shape: not shape.strip("d"),
+    "has_alpha": lambda shape: "X" in shape or "x" in shape,
+    "has_upper": lambda shape: "X" in shape,
+    "has_lower": lambda shape: "x" in shape,
+    "initial_upper": lambda shape: shape[:1] == "X",
+    "mixed_alnum": lambda shape: "d" in shape and ("X" in shape or "x" in shape),
+    "no_alnum": lambda shape: not ("d" in shape or "X" in shape or "x" in shape),
+    "has_dash": lambda shape: "-" in shape,
+    "has_dot": lambda shape: "." in shape,
+    "has_underscore": lambda shape: "_" in shape,
+    "has_slash": lambda shape: "/" in shape,
+    "has_colon": lambda shape: ":" in shape,
+    "has_at": lambda shape: "@" in shape,
+    "has_equals": lambda shape: "=" in shape,
 }
+TEXT_FLAGS: dict[str, Callable[[str], bool]] = {
+    "all_upper": str.isupper,
+    "all_lower": str.islower,
+    "title": str.istitle,
+}
+FLAGS: tuple[str, ...] = (
+    "has_digit", "all_digit", "has_alpha", "has_upper", "has_lower", "all_upper", "all_lower",
+    "title", "initial_upper", "mixed_alnum", "no_alnum", "has_dash", "has_dot", "has_underscore",
+    "has_slash", "has_colon", "has_at", "has_equals",
+)
+
+
+def flag_holds(name: str, text: str, shape: str) -> bool:
+    if name in TEXT_FLAGS:
+        return TEXT_FLAGS[name](text)
+    return SHAPE_FLAGS[name](shape)
 
 
 # --- the spec ---------------------------------------------------------------------------------------
@@ -118,7 +137,7 @@ class FeatureSpec:
     max_value_chars: int = 32
     prefix_lengths: tuple[int, ...] = (1, 2, 3)
     suffix_lengths: tuple[int, ...] = (1, 2, 3)
-    flags: tuple[str, ...] = tuple(FLAGS)
+    flags: tuple[str, ...] = FLAGS
     length_bounds: tuple[int, ...] = (1, 2, 3, 4, 6, 8, 12, 16, 24, 32)
     first_last: bool = True
     relative_buckets: int = 0
@@ -197,7 +216,7 @@ class FeatureSpec:
             elif group == "suffix":
                 out[group] = [f"s{n}={lower[-n:]}" for n in self.suffix_lengths if len(lower) >= n]
             elif group == "flags":
-                out[group] = ["flag=" + name for name in self.flags if FLAGS[name](text, shape)]
+                out[group] = ["flag=" + name for name in self.flags if flag_holds(name, text, shape)]
             elif group == "kind":
                 out[group] = ["kind=" + kind]
             elif group == "length":
@@ -388,19 +407,113 @@ def _ragged_gather(source: np.ndarray, starts: np.ndarray, counts: np.ndarray) -
     return source[positions]
 
 
+_SHAPE_GROUPS = frozenset({"shape", "collapsed_shape", "kind", "length"})
+
+# A feature-id lookup: lookup(feature_string, default) -> id, or `default` (-1) when the feature is not
+# in the vocabulary. dict.get has this signature, so the transform path stays in C.
+Lookup = Callable[[str, int], int]
+
+
+class _TypeEncoder:
+    """Fast path of FeatureSpec.type_strings + vocabulary lookup for new token types.
+
+    The groups that depend only on the word shape and kind (shape, collapsed shape, kind, length and
+    the shape flags) are looked up once per distinct (shape, kind) and cached: unseen tokens in logs
+    (numbers, ids, timestamps) mostly share a handful of shapes. Only the text groups (lower, affixes,
+    word lists, case flags) are built per new token, with labels prepared ahead; unknown features are
+    dropped later for all new types of a batch at once (see _RowBuilder.encode_new). The result must
+    equal type_strings filtered through the vocabulary; the tests check it against a plain reference.
+    """
+
+    def __init__(self, spec: FeatureSpec, lookup: Lookup, cache_size: int):
+        self.spec = spec
+        self.lookup = lookup
+        self.cache_size = cache_size
+        self.shape_cache: dict[tuple[str, str], list[list[int]]] = {}
+        self.text_flags = [(name, TEXT_FLAGS[name]) for name in spec.flags if name in TEXT_FLAGS]
+        self.shape_flags = [(name, SHAPE_FLAGS[name]) for name in spec.flags if name in SHAPE_FLAGS]
+        self.slots = []
+        for offset, groups in zip(spec.offsets(), spec.groups_at()):
+            label = _offset_prefix(offset)
+            self.slots.append((
+                label + "lower=" if "lower" in groups else None,
+                [f"{label}p{n}=" for n in spec.prefix_lengths] if "prefix" in groups else (),
+                [f"{label}s{n}=" for n in spec.suffix_lengths] if "suffix" in groups else (),
+                label + "list=" if "wordlists" in groups else None,
+                label + "flag=" if "flags" in groups else None,
+            ))
+        self.shape_groups = [(_offset_prefix(offset), [g for g in groups if g in _SHAPE_GROUPS],
+                              "flags" in groups)
+                             for offset, groups in zip(spec.offsets(), spec.groups_at())]
+
+    def shape_ids(self, shape: str, kind: str) -> list[list[int]]:
+        """Known ids of the shape-and-kind features at each slot (cached per (shape, kind))."""
+        key = (shape, kind)
+        cached = self.shape_cache.get(key)
+        if cached is not None:
+            return cached
+        spec, lookup = self.spec, self.lookup
+        values = {
+            "shape": "shape=" + shape[:spec.max_value_chars],
+            "collapsed_shape": "cshape=" + collapse_runs(shape)[:spec.max_value_chars],
+            "kind": "kind=" + kind,
+            "length": _length_feature(len(shape), spec.length_bounds),
+        }
+        flags = ["flag=" + name for name, holds in self.shape_flags if holds(shape)]
+        result = []
+        for label, groups, with_flags in self.shape_groups:
+            names = [label + values[g] for g in groups]
+            if with_flags:
+                names += [label + f for f in flags]
+            result.append([i for i in map(lookup, names, repeat(-1)) if i >= 0])
+        if len(self.shape_cache) >= self.cache_size:
+            self.shape_cache.clear()
+        self.shape_cache[key] = result
+        return result
+
+    def append_raw(self, text: str, kind: str, raw: list[int], sizes: list[int]) -> None:
+        """Append this type's ids, slot after slot, to `raw` (-1 where the feature is unknown) and
+        the number of raw entries of each slot to `sizes`."""
+        spec, lookup = self.spec, self.lookup
+        lower = text.lower()
+        size = len(lower)
+        cut_lower = lower[:spec.max_value_chars]
+        # Lengths are sorted ascending, so the affixes that fit are a prefix of the label list and
+        # map(add, labels, values) pairs them correctly (it stops at the shorter).
+        prefixes = [lower[:n] for n in spec.prefix_lengths if n <= size]
+        suffixes = [lower[-n:] for n in spec.suffix_lengths if n <= size]
+        lists = [name for name, words in spec.wordlists if lower in words]
+        case_flags = [name for name, holds in self.text_flags if holds(text)]
+        shape_part = self.shape_ids(text.translate(_SHAPE_TABLE), kind)
+        for (lower_label, prefix_labels, suffix_labels, list_label, flag_label), shape_ids in zip(
+                self.slots, shape_part):
+            names = list(map(add, prefix_labels, prefixes))
+            names += map(add, suffix_labels, suffixes)
+            if lower_label is not None:
+                names.append(lower_label + cut_lower)
+            if list_label is not None and lists:
+                names += [list_label + name for name in lists]
+            if flag_label is not None and case_flags:
+                names += [flag_label + name for name in case_flags]
+            raw += map(lookup, names, repeat(-1))
+            raw += shape_ids
+            sizes.append(len(names) + len(shape_ids))
+
+
 class _RowBuilder:
     """Builds CSR index arrays for batches under one feature-string -> id mapping.
 
-    `lookup(feature_string)` returns an id or None (feature ignored). The cache holds, per token type,
-    one int64 array: K per-offset counts followed by the ids of all offsets concatenated.
+    The cache holds, per token type (text, kind), one int64 array: K per-slot counts followed by the
+    known ids of all slots concatenated (slot 0 is the token itself, then the window offsets).
     """
 
-    def __init__(self, spec: FeatureSpec, lookup: Callable[[str], int | None], cache_size: int):
+    def __init__(self, spec: FeatureSpec, lookup: Lookup, cache_size: int):
         self.spec = spec
         self.lookup = lookup
         self.cache_size = max(1, int(cache_size))
         self.cache: dict[tuple[str, str], np.ndarray] = {}
         self.offsets = np.array(spec.offsets(), dtype=np.int64)
+        self.encoder = _TypeEncoder(spec, lookup, self.cache_size)
         self._build_constants()
 
     def _build_constants(self) -> None:
@@ -408,36 +521,59 @@ class _RowBuilder:
         names = ["bias", "pos=first", "pos=last"]
         names += [f"rel={b}" for b in range(self.spec.relative_buckets)]
         names += [_boundary_feature(int(o)) for o in self.offsets[1:]]
-        ids = [self.lookup(name) for name in names]
-        self.constants = np.array([-1 if i is None else i for i in ids], dtype=np.int64)
+        self.constants = np.array([self.lookup(name, -1) for name in names], dtype=np.int64)
         self.constant_known = (self.constants >= 0).astype(np.int64)
         if not self.spec.first_last:
             self.constant_known[1:3] = 0
         self.rel_base = 3
         self.boundary_base = 3 + self.spec.relative_buckets
 
-    def encode_type(self, key: tuple[str, str]) -> np.ndarray:
-        """Per-offset counts then ids for one (text, kind): (K + total ids,) int64."""
-        lookup = self.lookup
-        counts, ids = [], []
-        for strings in self.spec.type_strings(*key):
-            found = [i for i in map(lookup, strings) if i is not None]
-            counts.append(len(found))
-            ids.extend(found)
-        return np.array(counts + ids, dtype=np.int64)
+    def encode_new(self, keys: list[tuple[str, str]]) -> list[np.ndarray]:
+        """Cache entries for new types, built together: one array, then one slice (view) per type."""
+        raw: list[int] = []
+        sizes: list[int] = []
+        append_raw = self.encoder.append_raw
+        for text, kind in keys:
+            append_raw(text, kind, raw, sizes)
+        k = len(self.offsets)
+        raw_ids = np.array(raw, dtype=np.int64)
+        slot_sizes = np.array(sizes, dtype=np.int64)                        # (M*K,)
+        known = raw_ids >= 0
+        known_before = np.zeros(len(raw_ids) + 1, dtype=np.int64)             # known in raw[:i]
+        np.cumsum(known, out=known_before[1:])
+        slot_end = np.cumsum(slot_sizes)
+        slot_counts = (known_before[slot_end] - known_before[slot_end - slot_sizes]).reshape(-1, k)
+        entry_lengths = k + slot_counts.sum(axis=1)                          # (M,)
+        entry_end = np.cumsum(entry_lengths)
+        entry_start = entry_end - entry_lengths
+        out = np.empty(int(entry_end[-1]), dtype=np.int64)
+        out[(entry_start[:, None] + np.arange(k)).ravel()] = slot_counts.ravel()
+        # Known ids keep their order; each lands after its type's counts and the known ids before it.
+        raw_per_type = slot_sizes.reshape(-1, k).sum(axis=1)
+        raw_start = np.cumsum(raw_per_type) - raw_per_type
+        type_of_raw = np.repeat(np.arange(len(keys)), raw_per_type)
+        rank = known_before[1:][known] - 1 - known_before[raw_start][type_of_raw[known]]
+        out[entry_start[type_of_raw[known]] + k + rank] = raw_ids[known]
+        return [out[a:b] for a, b in zip(entry_start.tolist(), entry_end.tolist())]
 
-    def entries_for(self, keys: Iterable[tuple[str, str]]) -> list[np.ndarray]:
-        # Loop over distinct types of the batch only; most are cache hits.
+    def encode_type(self, key: tuple[str, str]) -> np.ndarray:
+        """Per-slot counts then ids for one (text, kind): (K + known ids,) int64."""
+        return self.encode_new([key])[0]
+
+    def entries_for(self, keys: list[tuple[str, str]]) -> list[np.ndarray]:
+        """Cache entries of the batch's distinct types, in order. Loops over distinct types only."""
         cache = self.cache
-        entries = []
-        for key in keys:
-            entry = cache.get(key)
-            if entry is None:
-                entry = self.encode_type(key)
-                if len(cache) >= self.cache_size:
-                    cache.clear()   # crude but O(1) amortised; the next batches refill what they use
+        entries = [cache.get(key) for key in keys]
+        missing = [n for n, entry in enumerate(entries) if entry is None]
+        if not missing:
+            return entries
+        new_keys = [keys[n] for n in missing]
+        if len(cache) + len(new_keys) > self.cache_size:
+            cache.clear()   # crude but O(1) amortised; the next batches refill what they use
+        for n, key, entry in zip(missing, new_keys, self.encode_new(new_keys)):
+            entries[n] = entry
+            if len(cache) < self.cache_size:
                 cache[key] = entry
-            entries.append(entry)
         return entries
 
     def build(self, sentences: Sequence[tuple[list[str], list[str]]]):
@@ -458,7 +594,7 @@ class _RowBuilder:
         for number, key in enumerate(type_index):
             type_index[key] = number
         token_type = np.fromiter(map(type_index.__getitem__, keys), dtype=np.int64, count=n_tokens)
-        entries = self.entries_for(type_index)
+        entries = self.entries_for(list(type_index))
 
         # Flat source array: constants first, then every type's entry.
         k = len(self.offsets)
@@ -542,7 +678,7 @@ class FeatureExtractor:
             raise ConfigError(f"min_count: must be a positive integer, got {min_count!r}")
         provisional: dict[str, int] = {}
 
-        def grow(name: str) -> int:
+        def grow(name: str, default: int) -> int:   # every feature is known while counting
             return provisional.setdefault(name, len(provisional))
 
         rows = _RowBuilder(self.spec, grow, self.cache_size)

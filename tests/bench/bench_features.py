@@ -1,0 +1,118 @@
+"""Feature extraction throughput on log-like lines (a benchmark, not a test).
+
+Run:  .venv/bin/python tests/bench/bench_features.py [--lines N] [--batch B] [--repeat R]
+
+Two workloads, both invented syslog-style lines:
+  repeated  a small pool of distinct lines cycled many times: nearly every token type is cached
+  fresh     every line with new pids, ports, addresses, timestamps and request ids: the cache misses
+            on those tokens as it would on a live log
+Tokens come from streamtag.tokenize when it is importable, otherwise from a small regex split.
+Prints tokens per CPU second for fit and for transform (cold cache on the first pass, warm after).
+"""
+
+from __future__ import annotations
+
+import argparse
+import random
+import re
+import time
+
+from streamtag.features import FeatureExtractor, FeatureSpec
+
+HOSTS = ["web-03", "db-core-1", "edge7.quillnet.test", "cache-2", "relay-north", "vault-a9"]
+SERVICES = ["sshd", "cron", "nginxish", "authd", "queue-worker", "zeldad", "postmux"]
+ACCOUNTS = ["mara.quill", "tobin_vesk", "root", "svc-backup", "ilsa.dorne", "okko"]
+PATHS = ["/var/lib/zeld/state.db", "/etc/quill/app.conf", "/srv/data/batch-7/input.csv", "/tmp/x1"]
+TEMPLATES = [
+    "{ts} {host} {svc}[{pid}]: Failed password for {acct} from {ip} port {port} ssh2",
+    "{ts} {host} {svc}[{pid}]: Accepted publickey for {acct} from {ip} port {port}",
+    "{ts} {host} {svc}[{pid}]: error opening {path}: permission denied (code E{code})",
+    "{ts} {host} {svc}[{pid}]: request id={rid} user={acct} status={status} took {ms}ms",
+    "{ts} {host} kernel: eth0: link up, 1000 Mbps, full duplex, lpa 0x{hexv}",
+    "{ts} {host} {svc}[{pid}]: connection from {ip} closed by peer after {ms} ms",
+    "{ts} {host} {svc}[{pid}]: scheduler queued job {rid} for {acct} on {host2}",
+]
+
+
+def make_line(rng: random.Random) -> str:
+    return rng.choice(TEMPLATES).format(
+        ts=f"2031-0{rng.randint(1, 9)}-{rng.randint(10, 28)}T{rng.randint(10, 23)}:"
+           f"{rng.randint(10, 59)}:{rng.randint(10, 59)}Z",
+        host=rng.choice(HOSTS), host2=rng.choice(HOSTS), svc=rng.choice(SERVICES),
+        pid=rng.randint(100, 65000), acct=rng.choice(ACCOUNTS), path=rng.choice(PATHS),
+        ip=f"10.{rng.randint(0, 255)}.{rng.randint(0, 255)}.{rng.randint(1, 254)}",
+        port=rng.randint(1024, 65535), code=rng.randint(100, 999), status=rng.choice([200, 403, 500]),
+        rid=f"{rng.getrandbits(48):012x}", ms=rng.randint(1, 5000), hexv=f"{rng.getrandbits(16):04x}",
+    )
+
+
+_SPLIT = re.compile(r"[\w.@/:-]+?(?=[\s\[\]=,()]|:\s|:$|$)|[\[\]=,()]|:")
+
+
+def _fallback_tokenize(line: str) -> tuple[list[str], list[str]]:
+    texts = _SPLIT.findall(line)
+    kinds = ["number" if t.isdigit() else "punct" if not any(c.isalnum() for c in t) else "word"
+             for t in texts]
+    return texts, kinds
+
+
+def tokenizer():
+    try:
+        from streamtag.tokenize import tokenize
+    except ImportError:
+        return _fallback_tokenize, "regex split (streamtag.tokenize not importable)"
+
+    def split(line: str) -> tuple[list[str], list[str]]:
+        tokens = tokenize(line)
+        return tokens.texts, tokens.kinds
+
+    return split, "streamtag.tokenize"
+
+
+def timed(action) -> tuple[float, object]:
+    """CPU seconds of this process (steadier than wall time on a shared machine) and the result."""
+    began = time.process_time()
+    result = action()
+    return time.process_time() - began, result
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--lines", type=int, default=40_000)
+    parser.add_argument("--batch", type=int, default=256)
+    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--pool", type=int, default=300, help="distinct lines of the repeated workload")
+    args = parser.parse_args()
+
+    split, how = tokenizer()
+    rng = random.Random(7)
+    spec = FeatureSpec.default()
+    train = [split(make_line(rng)) for _ in range(20_000)]
+    extractor = FeatureExtractor(spec)
+    fit_seconds, vocabulary = timed(lambda: extractor.fit(train, min_count=2))
+    train_tokens = sum(len(t) for t, _ in train)
+    print(f"tokens from       {how}")
+    print(f"fit               {train_tokens:,} tokens in {fit_seconds:.2f}s = "
+          f"{train_tokens / fit_seconds:,.0f} tokens/s; vocabulary {len(vocabulary):,} (min_count 2)")
+
+    pool = [split(make_line(rng)) for _ in range(args.pool)]
+    workloads = {
+        "repeated": [pool[i % len(pool)] for i in range(args.lines)],
+        "fresh": [split(make_line(rng)) for _ in range(args.lines)],
+    }
+    for name, lines in workloads.items():
+        batches = [lines[i:i + args.batch] for i in range(0, len(lines), args.batch)]
+        n_tokens = sum(len(t) for t, _ in lines)
+        fresh_extractor = FeatureExtractor(spec, vocabulary)
+        cold, _ = timed(lambda: [fresh_extractor.transform(b) for b in batches])
+        warm = min(timed(lambda: [fresh_extractor.transform(b) for b in batches])[0]
+                   for _ in range(args.repeat))
+        nnz = sum(fresh_extractor.transform(b)[0].nnz for b in batches[:10])
+        rows = sum(len(t) for b in batches[:10] for t, _ in b)
+        print(f"{name:<9} {len(lines):,} lines, {n_tokens:,} tokens ({n_tokens / len(lines):.1f}/line), "
+              f"batch {args.batch}: cold cache {n_tokens / cold:,.0f} tokens/s, "
+              f"warm {n_tokens / warm:,.0f} tokens/s, {nnz / rows:.1f} features/token")
+
+
+if __name__ == "__main__":
+    main()
