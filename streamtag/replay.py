@@ -47,11 +47,8 @@ from typing import Iterator
 import orjson
 
 from streamtag.config import WatchConfig
-from streamtag.daemon import decode_json, decode_text
 from streamtag.errors import ConfigError, DataError
 from streamtag.follow import FLAG_NO_NEWLINE, FLAG_TRUNCATED
-from streamtag.records import encode, make_record, make_review_record
-from streamtag.tagger import TaggedLine
 
 PROGRESS_FORMAT = "streamtag-replay-progress"
 PROGRESS_VERSION = 1
@@ -332,6 +329,11 @@ def _tag_chunk(chunk: Chunk) -> tuple[bytes, bytes, int]:
     (``Daemon._encode_batch``): binary lines are recorded untagged, control characters are blanked
     for tagging only, and the recorded text is the faithful one.
     """
+    # Imported here: the CLI imports this module to build its parser, and these pull in numpy/scipy.
+    from streamtag.daemon import decode_json, decode_text
+    from streamtag.records import encode, make_record, make_review_record
+    from streamtag.tagger import TaggedLine
+
     tagger = _worker["tagger"]
     settings: TagSettings = _worker["settings"]
     if settings.input_format == "json":

@@ -429,13 +429,15 @@ class ReviewSession:
                 self.screen.say(HELP)
                 continue
             try:
-                spans = self.edited(command, item, spans)
+                changed = self.edited(command, item, spans)
             except ValueError as exc:
                 self.screen.say(f"error: {exc}")
                 continue
-            problem = check_spans(item.text, spans, self.labels)
+            problem = check_spans(item.text, changed, self.labels)
             if problem:
-                self.screen.say(f"warning: {problem} (fix it before ok)")
+                self.screen.say(f"error: {problem}; spans unchanged")
+                continue
+            spans = changed
 
     def edited(self, command: str, item: QueueItem, spans: list[Span]) -> list[Span]:
         if command == "clear":
