@@ -178,9 +178,31 @@ class Follower:
             if ident is not None:
                 reachable.add(ident)
         self._start_at_end_once = False
-        for ident, followed in list(self._files.items()):
+        for ident, followed in self._files.items():
             followed.reachable = ident in reachable
+        self._find_renamed([f for f in self._files.values() if not f.reachable])
+        for followed in list(self._files.values()):
             self._check(followed, now)
+
+    def _find_renamed(self, unreachable: list[_Followed]) -> None:
+        """Learn the new names of renamed-away files (rotation keeps them in their directory)."""
+        by_directory: dict[str, list[_Followed]] = {}
+        for followed in unreachable:
+            by_directory.setdefault(os.path.dirname(followed.path) or ".", []).append(followed)
+        for directory, files in by_directory.items():
+            wanted = {(f.dev, f.ino): f for f in files}
+            inodes = {ino for _dev, ino in wanted}
+            try:
+                with os.scandir(directory) as entries:
+                    for entry in entries:
+                        if entry.inode() not in inodes:  # no stat call for the other entries
+                            continue
+                        st = entry.stat(follow_symlinks=False)
+                        followed = wanted.get((st.st_dev, st.st_ino))
+                        if followed is not None:
+                            followed.path = entry.path
+            except OSError:
+                continue
 
     def _candidate_paths(self) -> list[str]:
         """Paths named by the inputs right now (dict keeps order and drops repeats)."""
@@ -289,16 +311,7 @@ class Follower:
             self._drop(followed)
             return
         size = st.st_size
-        if size < followed.offset:
-            self._warn(
-                f"{followed.path} was truncated (size {size} < offset {followed.offset}); "
-                "reading it again from the start"
-            )
-            self._new_generation(followed)
-        elif not self._head_intact(followed, size):
-            self._warn(f"{followed.path} was rewritten (its first bytes changed); reading it again from the start")
-            self._new_generation(followed)
-        elif size < followed.data_end:
+        if self._same_content(followed, size) and size < followed.data_end:
             followed.forget_buffer()  # read-ahead beyond the offset is gone; read it again
         followed.deleted = st.st_nlink == 0
         if size != followed.size:
@@ -315,10 +328,32 @@ class Follower:
         )
         if not (followed.deleted or grace_over):
             followed.finishing = False  # still being written to after the rename: wait
-        elif followed.finishing and followed.offset >= size and not followed.held_bytes():
-            self._drop(followed)
+        elif followed.offset >= size and not followed.held_bytes():
+            self._drop(followed)  # everything in it has been handed out
         else:
             followed.finishing = True  # read() hands out the rest, a partial last line too
+
+    def _same_content(self, followed: _Followed, size: int) -> bool:
+        """False (and a new generation from offset 0) if the file was truncated or rewritten."""
+        if size < followed.offset:
+            self._warn(
+                f"{followed.path} was truncated (size {size} < offset {followed.offset}); "
+                "reading it again from the start"
+            )
+        elif not self._head_intact(followed, size):
+            self._warn(f"{followed.path} was rewritten (its first bytes changed); reading it again from the start")
+        else:
+            return True
+        self._new_generation(followed)
+        return False
+
+    def _changed_under_us(self, followed: _Followed) -> bool:
+        """Check made by read() before joining new bytes to bytes read earlier.
+
+        A truncation between poll() and read() would otherwise glue the old generation's partial
+        line to the new generation's bytes. Costs an fstat and a small pread per chunk read.
+        """
+        return not self._same_content(followed, os.fstat(followed.fd).st_size)
 
     def _head_intact(self, followed: _Followed, size: int) -> bool:
         """True if the file still starts with the remembered head; extends the head when possible."""
@@ -403,6 +438,8 @@ class Follower:
         data = os.pread(followed.fd, CHUNK_BYTES, position)
         if not data:
             return False
+        if self._changed_under_us(followed):
+            return True  # new generation: the caller reads again from offset 0
         if len(followed.head) < HEAD_BYTES and position == len(followed.head):
             followed.head += data[: HEAD_BYTES - position]
         followed.data_end = position + len(data)
@@ -440,6 +477,8 @@ class Follower:
         if not data:
             self._maybe_flush_tail(followed, now, out)
             return False
+        if self._changed_under_us(followed):
+            return True
         newline = data.find(b"\n")
         if newline < 0:
             followed.long_scan += len(data)
