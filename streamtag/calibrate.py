@@ -31,6 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 import orjson
 
+from streamtag.checkpoint import write_file_atomically
 from streamtag.errors import ConfigError, DataError
 from streamtag.evaluate import CalibrationBin, expected_calibration_error, reliability_table
 
@@ -313,15 +314,6 @@ def plot_svg(report: dict) -> str:
     return "\n".join(parts)
 
 
-def _write_private(path: str, data: bytes) -> None:
-    try:
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, FILE_MODE)
-    except OSError as exc:
-        raise DataError(f"{path}: cannot write plot ({exc.strerror})") from None
-    with os.fdopen(fd, "wb") as handle:
-        handle.write(data)
-
-
 # -- the command ---------------------------------------------------------------------------------------------
 
 
@@ -357,7 +349,7 @@ def run(args: argparse.Namespace) -> int:
     report["model"] = model.model_id
     report["data"] = args.data
     if args.plot:
-        _write_private(args.plot, plot_svg(report).encode("utf-8"))
+        write_file_atomically(args.plot, plot_svg(report).encode("utf-8"), FILE_MODE)
     if args.json:
         sys.stdout.write(orjson.dumps(report, option=orjson.OPT_INDENT_2).decode() + "\n")
     else:

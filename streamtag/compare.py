@@ -32,6 +32,7 @@ from pathlib import Path
 
 import orjson
 
+from streamtag.checkpoint import write_file_atomically
 from streamtag.errors import ConfigError, DataError
 
 Span = tuple[int, int, str]
@@ -68,34 +69,19 @@ def _is_int(value) -> bool:
     return isinstance(value, int) and not isinstance(value, bool)
 
 
-def _parse(raw: bytes, where: str) -> LineRecord:
-    try:
-        record = orjson.loads(raw)
-    except orjson.JSONDecodeError:
-        raise DataError(f"{where}: not a JSON record") from None
-    if not isinstance(record, dict) or not isinstance(record.get("text"), str):
-        raise DataError(f'{where}: not an output record (no "text")')
+def spans_of(items, where: str) -> list[Span]:
+    """(start, end, label) of a record's span objects, sorted; DataError naming the place if malformed."""
     spans = []
-    for item in record.get("spans") or []:
+    for item in items or []:
         if not (isinstance(item, dict) and _is_int(item.get("start")) and _is_int(item.get("end"))
                 and isinstance(item.get("label"), str)):
             raise DataError(f"{where}: a span lacks integer start/end or a string label")
         spans.append((item["start"], item["end"], item["label"]))
-    offset, line = record.get("offset"), record.get("line")
-    source = record.get("source")
-    return LineRecord(
-        source=source if isinstance(source, str) else None,
-        offset=offset if _is_int(offset) else None,
-        line=line if _is_int(line) else None,
-        text=record["text"],
-        spans=tuple(sorted(spans)),
-        review=bool(record.get("review")),
-        model=record.get("model") if isinstance(record.get("model"), str) else None,
-    )
+    return sorted(spans)
 
 
-def read_records(path: str) -> list[LineRecord]:
-    """All records of an output file; DataError naming FILE:LINE for a bad one.
+def json_records(path: str, kind: str = "record") -> list[tuple[str, dict]]:
+    """("FILE:LINE", object) for each record with a string "text"; DataError for anything else.
 
     A last line without a newline is an unfinished write (e.g. a daemon still running) and is left out.
     """
@@ -105,7 +91,37 @@ def read_records(path: str) -> list[LineRecord]:
         raise DataError(f"{path}: cannot read ({exc.strerror})") from None
     lines = data.split(b"\n")
     lines.pop()  # after the last newline: empty, or an unfinished record
-    return [_parse(raw, f"{path}:{number}") for number, raw in enumerate(lines, start=1) if raw.strip()]
+    records = []
+    for number, raw in enumerate(lines, start=1):
+        if not raw.strip():
+            continue
+        where = f"{path}:{number}"
+        try:
+            record = orjson.loads(raw)
+        except orjson.JSONDecodeError:
+            raise DataError(f"{where}: not a JSON record") from None
+        if not isinstance(record, dict) or not isinstance(record.get("text"), str):
+            raise DataError(f'{where}: not {kind} (no "text")')
+        records.append((where, record))
+    return records
+
+
+def _line_record(where: str, record: dict) -> LineRecord:
+    offset, line, source = record.get("offset"), record.get("line"), record.get("source")
+    return LineRecord(
+        source=source if isinstance(source, str) else None,
+        offset=offset if _is_int(offset) else None,
+        line=line if _is_int(line) else None,
+        text=record["text"],
+        spans=tuple(spans_of(record.get("spans"), where)),
+        review=bool(record.get("review")),
+        model=record.get("model") if isinstance(record.get("model"), str) else None,
+    )
+
+
+def read_records(path: str) -> list[LineRecord]:
+    """All records of an output file; DataError naming FILE:LINE for a bad one."""
+    return [_line_record(where, record) for where, record in json_records(path, "an output record")]
 
 
 def key_mode(old: list[LineRecord], new: list[LineRecord]) -> str:
@@ -499,15 +515,6 @@ def html_report(result: Comparison, old_path: str, new_path: str) -> str:
     return "\n".join(out)
 
 
-def _write_private(path: str, data: bytes) -> None:
-    try:
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, FILE_MODE)
-    except OSError as exc:
-        raise DataError(f"{path}: cannot write report ({exc.strerror})") from None
-    with os.fdopen(fd, "wb") as handle:
-        handle.write(data)
-
-
 # -- the command ------------------------------------------------------------------------------------------
 
 
@@ -528,7 +535,7 @@ def run(args: argparse.Namespace) -> int:
     else:
         print(format_summary(result, args.old, args.new, with_examples=args.examples > 0))
     if args.report:
-        _write_private(args.report, html_report(result, args.old, args.new).encode("utf-8"))
+        write_file_atomically(args.report, html_report(result, args.old, args.new).encode("utf-8"), FILE_MODE)
         if not args.json:
             print(f"\nreport written to {args.report}")
     return 0

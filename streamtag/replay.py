@@ -36,7 +36,6 @@ import multiprocessing
 import os
 import signal
 import sys
-import tempfile
 import time
 import zlib
 from collections import deque
@@ -46,6 +45,7 @@ from typing import Iterator
 
 import orjson
 
+from streamtag.checkpoint import write_file_atomically
 from streamtag.config import WatchConfig
 from streamtag.errors import ConfigError, DataError
 from streamtag.follow import FLAG_NO_NEWLINE, FLAG_TRUNCATED
@@ -437,38 +437,6 @@ def load_progress(path: str) -> Progress | None:
     return progress
 
 
-def write_atomically(path: str, data: bytes) -> None:
-    """Temp file, fsync, rename over ``path``, fsync the folder: a reader sees old or new, never half."""
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, temporary = tempfile.mkstemp(prefix=os.path.basename(path) + ".", suffix=".tmp", dir=folder)
-    try:
-        os.fchmod(fd, FILE_MODE)
-        _write_all(fd, data)
-        os.fsync(fd)
-        os.close(fd)
-        fd = -1
-        os.replace(temporary, path)
-    except BaseException:
-        if fd >= 0:
-            os.close(fd)
-        Path(temporary).unlink(missing_ok=True)
-        raise
-    _fsync_folder(folder)
-
-
-def _fsync_folder(folder: str) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass  # some file systems cannot fsync a folder; the rename is still atomic
-    finally:
-        os.close(fd)
-
-
 def _write_all(fd: int, data: bytes) -> None:
     view = memoryview(data)
     while view:
@@ -622,7 +590,7 @@ def _replay(reader: ArchiveReader, settings: TagSettings, workers: int, output: 
     out = _OutputFile(output, progress.output_bytes)
     queue = _OutputFile(review, progress.review_bytes) if review else None
     try:
-        write_atomically(sidecar, progress.to_json())
+        write_file_atomically(sidecar, progress.to_json(), FILE_MODE)
         results = _tagged_chunks(reader.chunks(progress.position), settings, workers)
         try:
             for chunk, (out_bytes, review_bytes, n_review) in results:
@@ -638,7 +606,7 @@ def _replay(reader: ArchiveReader, settings: TagSettings, workers: int, output: 
                 progress.output_bytes = out.length
                 progress.review_bytes = queue.length if queue else 0
                 progress.position = chunk.end
-                write_atomically(sidecar, progress.to_json())
+                write_file_atomically(sidecar, progress.to_json(), FILE_MODE)
                 if bar is not None:
                     bar.update(chunk.input_bytes_done, progress.lines_done)
         except KeyboardInterrupt:
@@ -650,7 +618,7 @@ def _replay(reader: ArchiveReader, settings: TagSettings, workers: int, output: 
         finally:
             results.close()
         progress.complete = True
-        write_atomically(sidecar, progress.to_json())
+        write_file_atomically(sidecar, progress.to_json(), FILE_MODE)
         if bar is not None:
             bar.update(bar.total, progress.lines_done, force=True)
             bar.finish()

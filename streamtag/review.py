@@ -42,11 +42,11 @@ import os
 import re
 import sys
 from dataclasses import dataclass
-from pathlib import Path
 from typing import TextIO
 
 import orjson
 
+from streamtag.compare import json_records, spans_of
 from streamtag.errors import ConfigError, DataError
 from streamtag.tokenize import tokenize
 
@@ -90,58 +90,24 @@ def decision_key(source, offset, text: str) -> tuple:
     return source, offset, hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()
 
 
-def _spans_of(items, where: str) -> list[Span]:
-    spans = []
-    for item in items or []:
-        if not (isinstance(item, dict) and isinstance(item.get("start"), int) and isinstance(item.get("end"), int)
-                and isinstance(item.get("label"), str)):
-            raise DataError(f"{where}: a span lacks integer start/end or a string label")
-        spans.append((item["start"], item["end"], item["label"]))
-    return sorted(spans)
-
-
 def read_queue(path: str) -> list[QueueItem]:
     """Review records, in file order; a last line without newline (still being written) is left out."""
     items = []
-    for number, raw in _complete_lines(path):
-        where = f"{path}:{number}"
-        try:
-            record = orjson.loads(raw)
-        except orjson.JSONDecodeError:
-            raise DataError(f"{where}: not a JSON record") from None
-        if not isinstance(record, dict) or not isinstance(record.get("text"), str):
-            raise DataError(f'{where}: not a review record (no "text")')
+    for where, record in json_records(path, "a review record"):
         runner = record.get("runner_up")
-        runner_spans = _spans_of(runner.get("spans"), where) if isinstance(runner, dict) else None
+        runner_spans = spans_of(runner.get("spans"), where) if isinstance(runner, dict) else None
         probability = runner.get("probability") if isinstance(runner, dict) else None
-        items.append(QueueItem(record, record["text"], _spans_of(record.get("spans"), where), runner_spans,
+        items.append(QueueItem(record, record["text"], spans_of(record.get("spans"), where), runner_spans,
                                probability if isinstance(probability, (int, float)) else None))
     return items
-
-
-def _complete_lines(path: str):
-    try:
-        data = Path(path).read_bytes()
-    except OSError as exc:
-        raise DataError(f"{path}: cannot read ({exc.strerror})") from None
-    lines = data.split(b"\n")
-    lines.pop()
-    return [(number, raw) for number, raw in enumerate(lines, start=1) if raw.strip()]
 
 
 def decided_keys(path: str) -> set[tuple]:
     """Keys of the lines already decided in REVIEWED (empty if it does not exist yet)."""
     if not os.path.exists(path):
         return set()
-    keys = set()
-    for number, raw in _complete_lines(path):
-        try:
-            record = orjson.loads(raw)
-        except orjson.JSONDecodeError:
-            raise DataError(f"{path}:{number}: not a JSON record") from None
-        if isinstance(record, dict) and isinstance(record.get("text"), str):
-            keys.add(decision_key(record.get("source"), record.get("offset"), record["text"]))
-    return keys
+    return {decision_key(record.get("source"), record.get("offset"), record["text"])
+            for _, record in json_records(path, "a reviewed record")}
 
 
 class DecisionLog:

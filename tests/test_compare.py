@@ -65,8 +65,8 @@ span_sets = st.builds(_spans_from, st.lists(st.integers(0, 40), max_size=10),
 @given(st.lists(st.tuples(span_sets, span_sets, st.booleans(), st.booleans()), min_size=1, max_size=12))
 def test_counts_agree_with_plain_set_difference(pairs):
     text = "x" * 40
-    old = [compare._parse(orjson.dumps(record(i, text, a, ra)), "old") for i, (a, b, ra, rb) in enumerate(pairs)]
-    new = [compare._parse(orjson.dumps(record(i, text, b, rb)), "new") for i, (a, b, ra, rb) in enumerate(pairs)]
+    old = [compare._line_record("old", record(i, text, a, ra)) for i, (a, b, ra, rb) in enumerate(pairs)]
+    new = [compare._line_record("new", record(i, text, b, rb)) for i, (a, b, ra, rb) in enumerate(pairs)]
     result = compare.compare(old, new)
 
     # Independent recomputation (common practice): set difference of (start, end, label) tuples.

@@ -261,6 +261,23 @@ def test_resume_after_sigkill_gives_the_uninterrupted_bytes(tmp_path, model_path
     assert review.read_bytes() == reference_review.read_bytes()
 
 
+def interrupted_run(monkeypatch, argv: list[str], at_chunk: int) -> None:
+    """A one-worker replay that gets Ctrl-C while tagging chunk number ``at_chunk``."""
+    original = replay._tag_chunk
+    calls = {"n": 0}
+
+    def interrupting(chunk):
+        calls["n"] += 1
+        if calls["n"] == at_chunk:
+            raise KeyboardInterrupt
+        return original(chunk)
+
+    monkeypatch.setattr(replay, "_tag_chunk", interrupting)
+    with pytest.raises(KeyboardInterrupt):
+        replay.run(parse_args(argv))
+    monkeypatch.setattr(replay, "_tag_chunk", original)
+
+
 def test_interrupted_in_process_then_resumed_with_other_worker_count(tmp_path, model_path, monkeypatch):
     archive = big_archive(tmp_path / "in", 700)
     reference = tmp_path / "ref.jsonl"
@@ -268,19 +285,7 @@ def test_interrupted_in_process_then_resumed_with_other_worker_count(tmp_path, m
                            "--chunk-lines", "50", "--quiet"]))
     out = tmp_path / "out.jsonl"
     argv = [str(archive), "--model", model_path, "--output", str(out), "--chunk-lines", "50", "--quiet"]
-    calls = {"n": 0}
-    original = replay._tag_chunk
-
-    def interrupting(chunk):
-        calls["n"] += 1
-        if calls["n"] == 5:
-            raise KeyboardInterrupt
-        return original(chunk)
-
-    monkeypatch.setattr(replay, "_tag_chunk", interrupting)
-    with pytest.raises(KeyboardInterrupt):
-        replay.run(parse_args(argv + ["--workers", "1"]))
-    monkeypatch.setattr(replay, "_tag_chunk", original)
+    interrupted_run(monkeypatch, argv + ["--workers", "1"], at_chunk=5)
     assert orjson.loads(Path(str(out) + ".progress").read_bytes())["chunks_done"] == 4
     # --workers does not change the output, so it may differ between the runs.
     assert replay.run(parse_args(argv + ["--workers", "2"])) == 0
@@ -292,19 +297,7 @@ def test_changed_arguments_are_refused_unless_restart(tmp_path, model_path, monk
     out = tmp_path / "out.jsonl"
     argv = [str(archive), "--model", model_path, "--output", str(out), "--workers", "1", "--chunk-lines", "50",
             "--quiet"]
-    original = replay._tag_chunk
-    calls = {"n": 0}
-
-    def interrupting(chunk):
-        calls["n"] += 1
-        if calls["n"] == 3:
-            raise KeyboardInterrupt
-        return original(chunk)
-
-    monkeypatch.setattr(replay, "_tag_chunk", interrupting)
-    with pytest.raises(KeyboardInterrupt):
-        replay.run(parse_args(argv))
-    monkeypatch.setattr(replay, "_tag_chunk", original)
+    interrupted_run(monkeypatch, argv, at_chunk=3)
     with pytest.raises(ConfigError, match="--restart"):
         replay.run(parse_args(argv + ["--threshold", "0.9"]))
     assert replay.run(parse_args(argv + ["--threshold", "0.9", "--restart"])) == 0
