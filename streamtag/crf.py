@@ -143,13 +143,16 @@ class _Packing:
         return packed
 
     def to_flat(self, packed: np.ndarray) -> np.ndarray:
-        """(L, N) packed -> (N, L) flat (a Fortran-ordered array; rows are still tokens)."""
-        return packed[:, self.packed_of_flat].T
+        """(L, N) packed -> (N, L) flat, C-contiguous."""
+        flat = np.empty(packed.shape[::-1])
+        for begin in range(0, flat.shape[0], _TRANSPOSE_BLOCK):
+            flat[begin:begin + _TRANSPOSE_BLOCK] = packed[:, self.packed_of_flat[begin:begin + _TRANSPOSE_BLOCK]].T
+        return flat
 
     def predecessor_cols(self) -> np.ndarray:
-        """For every packed column of steps >= 1 (columns step_start[1]:), the column of the token before."""
-        step = np.repeat(np.arange(self.max_len), self.batch_sizes)[self.step_start[1] if self.max_len else 0:]
-        return np.arange(self.step_start[1] if self.max_len else 0, self.n_tokens) - self.batch_sizes[step - 1]
+        """(N - n_0,) for each packed column of steps >= 1, in order, the column of the token before."""
+        step = np.repeat(np.arange(1, self.max_len), self.batch_sizes[1:])
+        return np.arange(self.n_tokens - step.size, self.n_tokens) - self.batch_sizes[step - 1]
 
 
 def _check_inputs(E: np.ndarray, lengths: np.ndarray, trans: np.ndarray) -> tuple[np.ndarray, _Packing]:
@@ -191,15 +194,24 @@ class _ExpMatrix:
         self.left = np.ascontiguousarray(np.exp(self.log - self.shift).T)
 
 
-def _log_matmul_exp(values: np.ndarray, matrix: _ExpMatrix) -> np.ndarray:
+def _log_matmul_exp(values: np.ndarray, matrix: _ExpMatrix, scaled=None, peak_out=None) -> np.ndarray:
     """out[j, r] = log sum_i exp(values[i, r] + M[i, j]); (L, n) -> (L, n).
 
     One small matrix product per call: log(exp(M - max M).T @ exp(v - max v)) + max v + max M. Columns
     whose scaled sums fall into the sub-normal range (possible only with extreme score gaps or -inf
     inputs) are recomputed exactly, so the result is exact to rounding everywhere.
+    If given, exp(v - max v) is written to `scaled` (L, n) and the column maxima to `peak_out` (n,),
+    for callers that reuse them (the expected pair counts of training).
     """
     peak = _peak(values, 0)
-    sums = matrix.left @ np.exp(values - peak)
+    if scaled is None:
+        scaled = np.exp(values - peak)
+    else:
+        np.subtract(values, peak, out=scaled)
+        np.exp(scaled, out=scaled)
+    if peak_out is not None:
+        peak_out[:] = peak[0]
+    sums = matrix.left @ scaled
     with np.errstate(divide="ignore"):
         out = np.log(sums)
     out += peak + matrix.shift
@@ -207,6 +219,19 @@ def _log_matmul_exp(values: np.ndarray, matrix: _ExpMatrix) -> np.ndarray:
         suspect = (sums < _TINY).any(axis=0)
         out[:, suspect] = _logsumexp(values[:, None, suspect] + matrix.log[:, :, None], axis=0)
     return out
+
+
+class _PairFactors(NamedTuple):
+    """Scaled factors of every adjacent pair, kept from the forward-backward loops; P = N - n_0 pairs,
+    pair p is the token at packed column n_0 + p with its predecessor.
+
+    alpha (L, P) = exp(log alpha[t-1] - alpha_peak), after (L, P) = exp(E[t] + log beta[t] - after_peak).
+    """
+
+    alpha: np.ndarray
+    alpha_peak: np.ndarray
+    after: np.ndarray
+    after_peak: np.ndarray
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -218,9 +243,11 @@ class _PackedForwardBackward(NamedTuple):
     log_alpha: np.ndarray  # (L, N) packed
     log_beta: np.ndarray  # (L, N) packed
     log_z: np.ndarray  # (B,)
+    pairs: _PairFactors | None = None
 
 
-def _forward_backward_packed(E: np.ndarray, pk: _Packing, trans, start, end) -> _PackedForwardBackward:
+def _forward_backward_packed(E: np.ndarray, pk: _Packing, trans, start, end,
+                             keep_pairs: bool = False) -> _PackedForwardBackward:
     trans = np.asarray(trans, dtype=np.float64)
     start = np.asarray(start, dtype=np.float64)
     end = np.asarray(end, dtype=np.float64)
@@ -228,19 +255,31 @@ def _forward_backward_packed(E: np.ndarray, pk: _Packing, trans, start, end) -> 
     alpha = np.empty_like(Ep)
     beta = np.empty_like(Ep)
     forward, backward = _ExpMatrix(trans), _ExpMatrix(trans.T)
+    first_pair = int(pk.step_start[1]) if pk.max_len > 1 else pk.n_tokens
+    n_pairs = pk.n_tokens - first_pair
+    pairs = None
+    if keep_pairs:
+        n_labels = Ep.shape[0]
+        pairs = _PairFactors(np.empty((n_labels, n_pairs)), np.empty(n_pairs),
+                             np.empty((n_labels, n_pairs)), np.empty(n_pairs))
     if pk.max_len:
         first = pk.cols(0)
         alpha[:, first] = start[:, None] + Ep[:, first]
     for t in range(1, pk.max_len):
         cur, prev = pk.cols(t), pk.cols(t - 1, pk.batch_sizes[t])
-        alpha[:, cur] = _log_matmul_exp(alpha[:, prev], forward) + Ep[:, cur]
+        pair = slice(cur.start - first_pair, cur.stop - first_pair)
+        alpha[:, cur] = _log_matmul_exp(alpha[:, prev], forward, *(
+            (pairs.alpha[:, pair], pairs.alpha_peak[pair]) if keep_pairs else ()))
+        alpha[:, cur] += Ep[:, cur]
     beta[:, pk.last_packed] = end[:, None]
     for t in range(pk.max_len - 1, 0, -1):
         cur, prev = pk.cols(t), pk.cols(t - 1, pk.batch_sizes[t])
-        beta[:, prev] = _log_matmul_exp(Ep[:, cur] + beta[:, cur], backward)
+        pair = slice(cur.start - first_pair, cur.stop - first_pair)
+        beta[:, prev] = _log_matmul_exp(Ep[:, cur] + beta[:, cur], backward, *(
+            (pairs.after[:, pair], pairs.after_peak[pair]) if keep_pairs else ()))
     log_z = np.zeros(pk.lengths.size)
     log_z[pk.nonempty] = _logsumexp(alpha[:, pk.last_packed] + end[:, None], axis=0)
-    return _PackedForwardBackward(Ep, alpha, beta, log_z)
+    return _PackedForwardBackward(Ep, alpha, beta, log_z, pairs)
 
 
 def forward_backward(E, lengths, trans, start, end) -> ForwardBackward:
@@ -461,28 +500,22 @@ def _expected_pair_counts(packed: _PackedForwardBackward, pk: _Packing, trans: n
 
     P(i, j) = exp(alpha[t-1, i] + trans[i, j] + E[t, j] + beta[t, j] - log Z). Factored as
     exp(alpha - a) (x) exp(E + beta - g) * exp(trans - shift) * exp(a + g + shift - log Z) with column
-    maxima a, g, so all pairs reduce to one (L, P) @ (P, L) product. The last factor is at least
-    1 / L^2; a pair whose factor would overflow (extreme score gaps) is summed exactly instead.
+    maxima a, g (the first two factors are kept from the forward-backward loops), so all pairs reduce
+    to one (L, P) @ (P, L) product. The last factor is at least 1 / L^2; a pair whose factor would
+    overflow (extreme score gaps) is summed exactly instead.
     """
     if pk.max_len < 2:
         return np.zeros_like(trans)
     nxt = slice(int(pk.step_start[1]), pk.n_tokens)
-    alpha = packed.log_alpha[:, pk.predecessor_cols()]
-    after = packed.emissions[:, nxt] + packed.log_beta[:, nxt]
+    factors = packed.pairs
     log_z = packed.log_z[pk.seq_of_token[pk.flat_of_packed[nxt]]]
     pair_weight = weight[nxt]
     matrix = _ExpMatrix(trans)
-    alpha_peak, after_peak = _peak(alpha, 0), _peak(after, 0)
-    exponent = alpha_peak[0] + after_peak[0] + matrix.shift - log_z
+    exponent = factors.alpha_peak + factors.after_peak + matrix.shift - log_z
     exact = ~(exponent <= _EXP_LIMIT)  # also catches NaN from an impossible sequence (log Z = -inf)
     scale = pair_weight * np.exp(np.where(exact, 0.0, exponent))
     scale[exact] = 0.0
-    alpha -= alpha_peak
-    np.exp(alpha, out=alpha)
-    alpha *= scale
-    after -= after_peak
-    np.exp(after, out=after)
-    counts = (alpha @ after.T) * matrix.left.T
+    counts = ((factors.alpha * scale) @ factors.after.T) * matrix.left.T
     cols = np.flatnonzero(exact & np.isfinite(log_z))
     if cols.size:
         pair_alpha = packed.log_alpha[:, pk.predecessor_cols()[cols]]
@@ -530,7 +563,7 @@ def nll_and_grad(E, gold, lengths, trans, start, end, weights=None):
     if not np.isfinite(gold_score).all():
         raise ValueError("a gold label sequence takes a forbidden move or has a -inf score")
 
-    packed = _forward_backward_packed(E, pk, trans, start, end)
+    packed = _forward_backward_packed(E, pk, trans, start, end, keep_pairs=True)
     nll = float(np.dot(seq_weight, packed.log_z - gold_score))
     seq_of_packed = pk.seq_of_token[pk.flat_of_packed]
     weight_packed = seq_weight[seq_of_packed]

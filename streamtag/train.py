@@ -12,7 +12,9 @@ Everything is ordered deterministically, so the same data, options and seed give
 
 from __future__ import annotations
 
+import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Callable, NamedTuple, Sequence
 
@@ -125,7 +127,6 @@ class ParamLayout:
 
 class _Chunk(NamedTuple):
     X: sparse.csr_matrix  # (n, F)
-    X_t: sparse.csr_matrix  # (F, n), for the emission gradient X.T @ dE
     gold: np.ndarray
     lengths: np.ndarray
     weights: np.ndarray
@@ -143,12 +144,12 @@ class TrainingObjective:
     """Weighted NLL + l2/2 * ||theta||^2 over a corpus, and its gradient, as a function of theta.
 
     X (N, F) CSR features, gold (N,) label ids, lengths (B,), weights (B,) or None. The corpus is
-    processed in sentence-aligned chunks of about CHUNK_TOKENS tokens; chunks are summed in order,
-    so the result is deterministic.
+    processed in sentence-aligned chunks of about CHUNK_TOKENS tokens, on `threads` threads; chunks
+    are summed in order, so the result is deterministic and independent of the thread count.
     """
 
     def __init__(self, X, gold, lengths, layout: ParamLayout, weights=None, l2: float = 0.0,
-                 chunk_tokens: int = CHUNK_TOKENS):
+                 chunk_tokens: int = CHUNK_TOKENS, threads: int = 1):
         X = sparse.csr_matrix(X, dtype=np.float64)
         gold = np.asarray(gold, dtype=np.int64)
         lengths = np.asarray(lengths, dtype=np.int64)
@@ -159,22 +160,35 @@ class TrainingObjective:
         offsets = np.concatenate(([0], np.cumsum(lengths)))
         for first, stop in _sentence_chunks(lengths, chunk_tokens):
             rows = slice(int(offsets[first]), int(offsets[stop]))
-            X_chunk = X[rows]
-            self.chunks.append(_Chunk(X_chunk, X_chunk.T.tocsr(), gold[rows], lengths[first:stop], weights[first:stop]))
+            self.chunks.append(_Chunk(X[rows], gold[rows], lengths[first:stop], weights[first:stop]))
+        self.threads = max(1, min(int(threads), len(self.chunks)))
+
+    @staticmethod
+    def _chunk_terms(chunk: _Chunk, emission, trans, start, end):
+        """NLL and gradients of one chunk: (nll, d_emission (F, L), dtrans, dstart, dend)."""
+        E = chunk.X @ emission
+        nll, dE, dT, dS, dN = crf.nll_and_grad(E, chunk.gold, chunk.lengths, trans, start, end, chunk.weights)
+        # X.T is a CSC view of the same arrays: no transposed copy of the corpus is kept.
+        return nll, chunk.X.T @ dE, dT, dS, dN
 
     def __call__(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
         """(objective value, gradient (P,)) at theta (P,)."""
         layout = self.layout
-        emission, trans, start, end = layout.masked(theta)
+        masked = layout.masked(theta)
+        if self.threads > 1:
+            # numpy and scipy.sparse release the GIL in their loops, so chunks overlap on several
+            # cores; results are summed in chunk order, so the sum is the same bits as serially.
+            with ThreadPoolExecutor(self.threads) as pool:
+                terms = list(pool.map(lambda chunk: self._chunk_terms(chunk, *masked), self.chunks))
+        else:
+            terms = [self._chunk_terms(chunk, *masked) for chunk in self.chunks]
         grad = np.zeros(layout.size)
         d_emission = grad[layout.emission].reshape(layout.n_features, layout.n_labels)
-        d_trans, d_start, d_end = np.zeros_like(trans), np.zeros_like(start), np.zeros_like(end)
+        d_trans, d_start, d_end = np.zeros_like(masked[1]), np.zeros_like(masked[2]), np.zeros_like(masked[3])
         loss = 0.0
-        for chunk in self.chunks:
-            E = chunk.X @ emission
-            nll, dE, dT, dS, dN = crf.nll_and_grad(E, chunk.gold, chunk.lengths, trans, start, end, chunk.weights)
+        for nll, dW, dT, dS, dN in terms:
             loss += nll
-            d_emission += chunk.X_t @ np.ascontiguousarray(dE)
+            d_emission += dW
             d_trans += dT
             d_start += dS
             d_end += dN
@@ -278,8 +292,17 @@ def fit_arrays(X, gold, lengths, n_labels, allowed_trans, allowed_start, options
     return params, info
 
 
+def _default_threads() -> int:
+    """Cores this process may use, at most 4 (more chunks in flight cost memory, gain little)."""
+    try:
+        available = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on every platform
+        available = os.cpu_count() or 1
+    return max(1, min(4, available))
+
+
 def _fit_lbfgs(X, gold, lengths, layout, options, weights, theta0, keeper, progress, began):
-    objective = TrainingObjective(X, gold, lengths, layout, weights, l2=options.l2)
+    objective = TrainingObjective(X, gold, lengths, layout, weights, l2=options.l2, threads=_default_threads())
     n_params, l1 = layout.size, float(options.l1)
     if l1 > 0:
         # w = u - v, u, v >= 0: the L1 norm becomes the linear term l1 * sum(u + v), so the problem is

@@ -230,3 +230,13 @@ def test_train_model_end_to_end():
     assert calls
     again = train.train_model(sentences, FeatureSpec.default(), train.TrainOptions(max_iter=5), init_model=model)
     assert set(model.vocabulary) <= set(again.vocabulary)
+
+
+def test_objective_is_bit_identical_with_threads():
+    # Chunks summed in a fixed order: the thread count must not change a single bit.
+    X, gold, lengths, weights = toy_corpus(16, n_sentences=90)
+    layout = layout_for(X)
+    theta = np.random.default_rng(17).normal(size=layout.size)
+    serial = train.TrainingObjective(X, gold, lengths, layout, weights, l2=0.2, chunk_tokens=40, threads=1)(theta)
+    threaded = train.TrainingObjective(X, gold, lengths, layout, weights, l2=0.2, chunk_tokens=40, threads=3)(theta)
+    assert serial[0] == threaded[0] and np.array_equal(serial[1], threaded[1])
