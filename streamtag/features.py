@@ -20,7 +20,7 @@ import tomllib
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from importlib import resources
-from itertools import chain, groupby, islice, repeat
+from itertools import chain, groupby, islice
 from operator import add
 from pathlib import Path
 
@@ -407,121 +407,164 @@ def _ragged_gather(source: np.ndarray, starts: np.ndarray, counts: np.ndarray) -
     return source[positions]
 
 
-_SHAPE_GROUPS = frozenset({"shape", "collapsed_shape", "kind", "length"})
+_SHAPE_GROUPS = ("shape", "collapsed_shape", "kind", "length")
+_TEXT_GROUPS = ("lower", "prefix", "suffix", "wordlists")
+_OFFSET_LABEL = re.compile(r"([+-]\d+)\|")
+_AFFIX = re.compile(r"([ps])\d+=")
 
-# A feature-id lookup: lookup(feature_string, default) -> id, or `default` (-1) when the feature is not
-# in the vocabulary. dict.get has this signature, so the transform path stays in C.
-Lookup = Callable[[str, int], int]
+
+def _group_of(unlabeled: str) -> str | None:
+    """Group that produces a feature string (without its offset label); None for position features."""
+    head = unlabeled.partition("=")[0]
+    group = {"lower": "lower", "shape": "shape", "cshape": "collapsed_shape", "kind": "kind",
+             "flag": "flags", "list": "wordlists"}.get(head)
+    if group is not None:
+        return group
+    if unlabeled.startswith("len"):
+        return "length"
+    affix = _AFFIX.match(unlabeled)
+    if affix:
+        return "prefix" if affix.group(1) == "p" else "suffix"
+    return None
 
 
-class _TypeEncoder:
-    """Fast path of FeatureSpec.type_strings + vocabulary lookup for new token types.
+# A token type's contribution is a list of (slot, id) pairs: slot k is the k-th entry of
+# FeatureSpec.offsets() (0 = the token itself). Encoders append pairs to two flat lists and return how
+# many they appended; _RowBuilder lays them out per slot with numpy for all new types of a batch.
+Pairs = tuple[list[int], list[int]]
 
-    The groups that depend only on the word shape and kind (shape, collapsed shape, kind, length and
-    the shape flags) are looked up once per distinct (shape, kind) and cached: unseen tokens in logs
-    (numbers, ids, timestamps) mostly share a handful of shapes. Only the text groups (lower, affixes,
-    word lists, case flags) are built per new token, with labels prepared ahead; unknown features are
-    dropped later for all new types of a batch at once (see _RowBuilder.encode_new). The result must
-    equal type_strings filtered through the vocabulary; the tests check it against a plain reference.
+
+class _VocabularyEncoder:
+    """(text, kind) -> known (slot, id) pairs, with one dict lookup per distinct feature value.
+
+    The vocabulary is indexed by feature string *without* offset label: "p3=557" -> the (slot, id)
+    of "p3=557", "+1|p3=557", ... that are in the vocabulary (and whose group the spec uses at that
+    slot). So a new token costs one lookup per value (its lower form, each affix, ...), not one per
+    value and slot, and values never seen in training cost nothing more. Shape-and-kind features
+    (shape, collapsed shape, kind, length, shape flags) are cached per distinct (shape, kind): new
+    tokens in logs (numbers, ids, timestamps) share a handful of shapes.
     """
 
-    def __init__(self, spec: FeatureSpec, lookup: Lookup, cache_size: int):
+    def __init__(self, spec: FeatureSpec, feature_id: dict[str, int], cache_size: int):
         self.spec = spec
-        self.lookup = lookup
         self.cache_size = cache_size
-        self.shape_cache: dict[tuple[str, str], list[list[int]]] = {}
-        self.text_flags = [(name, TEXT_FLAGS[name]) for name in spec.flags if name in TEXT_FLAGS]
-        self.shape_flags = [(name, SHAPE_FLAGS[name]) for name in spec.flags if name in SHAPE_FLAGS]
-        self.slots = []
-        for offset, groups in zip(spec.offsets(), spec.groups_at()):
-            label = _offset_prefix(offset)
-            self.slots.append((
-                label + "lower=" if "lower" in groups else None,
-                [f"{label}p{n}=" for n in spec.prefix_lengths] if "prefix" in groups else (),
-                [f"{label}s{n}=" for n in spec.suffix_lengths] if "suffix" in groups else (),
-                label + "list=" if "wordlists" in groups else None,
-                label + "flag=" if "flags" in groups else None,
-            ))
-        self.shape_groups = [(_offset_prefix(offset), [g for g in groups if g in _SHAPE_GROUPS],
-                              "flags" in groups)
-                             for offset, groups in zip(spec.offsets(), spec.groups_at())]
+        self.shape_cache: dict[tuple[str, str], Pairs] = {}
+        used = set(chain.from_iterable(spec.groups_at()))
+        self.text_flags = [(name, TEXT_FLAGS[name]) for name in spec.flags if name in TEXT_FLAGS] \
+            if "flags" in used else []
+        self.shape_flags = [(name, SHAPE_FLAGS[name]) for name in spec.flags if name in SHAPE_FLAGS] \
+            if "flags" in used else []
+        self.use = {group: group in used for group in GROUPS}
+        self.prefix_labels = [f"p{n}=" for n in spec.prefix_lengths] if self.use["prefix"] else []
+        self.suffix_labels = [f"s{n}=" for n in spec.suffix_lengths] if self.use["suffix"] else []
+        self.index = self._index(feature_id)
 
-    def shape_ids(self, shape: str, kind: str) -> list[list[int]]:
-        """Known ids of the shape-and-kind features at each slot (cached per (shape, kind))."""
+    def _index(self, feature_id: dict[str, int]) -> dict[str, Pairs]:
+        slot_of = {offset: slot for slot, offset in enumerate(self.spec.offsets())}
+        groups_at = self.spec.groups_at()
+        index: dict[str, Pairs] = {}
+        for name, number in feature_id.items():
+            labelled = _OFFSET_LABEL.match(name)
+            offset = int(labelled.group(1)) if labelled else 0
+            unlabeled = name[labelled.end():] if labelled else name
+            slot = slot_of.get(offset)
+            if slot is None or _group_of(unlabeled) not in groups_at[slot]:
+                continue   # a feature this spec never produces (e.g. a boundary marker or "bias")
+            slots, ids = index.setdefault(unlabeled, ([], []))
+            slots.append(slot)
+            ids.append(number)
+        return index
+
+    def shape_pairs(self, shape: str, kind: str) -> Pairs:
         key = (shape, kind)
         cached = self.shape_cache.get(key)
         if cached is not None:
             return cached
-        spec, lookup = self.spec, self.lookup
-        values = {
-            "shape": "shape=" + shape[:spec.max_value_chars],
-            "collapsed_shape": "cshape=" + collapse_runs(shape)[:spec.max_value_chars],
-            "kind": "kind=" + kind,
-            "length": _length_feature(len(shape), spec.length_bounds),
-        }
-        flags = ["flag=" + name for name, holds in self.shape_flags if holds(shape)]
-        result = []
-        for label, groups, with_flags in self.shape_groups:
-            names = [label + values[g] for g in groups]
-            if with_flags:
-                names += [label + f for f in flags]
-            result.append([i for i in map(lookup, names, repeat(-1)) if i >= 0])
+        spec, use = self.spec, self.use
+        names = []
+        if use["shape"]:
+            names.append("shape=" + shape[:spec.max_value_chars])
+        if use["collapsed_shape"]:
+            names.append("cshape=" + collapse_runs(shape)[:spec.max_value_chars])
+        if use["kind"]:
+            names.append("kind=" + kind)
+        if use["length"]:
+            names.append(_length_feature(len(shape), spec.length_bounds))
+        names += ["flag=" + name for name, holds in self.shape_flags if holds(shape)]
+        slots: list[int] = []
+        ids: list[int] = []
+        for found in map(self.index.get, names):
+            if found is not None:
+                slots += found[0]
+                ids += found[1]
         if len(self.shape_cache) >= self.cache_size:
             self.shape_cache.clear()
-        self.shape_cache[key] = result
-        return result
+        self.shape_cache[key] = (slots, ids)
+        return slots, ids
 
-    def append_raw(self, text: str, kind: str, raw: list[int], sizes: list[int]) -> None:
-        """Append this type's ids, slot after slot, to `raw` (-1 where the feature is unknown) and
-        the number of raw entries of each slot to `sizes`."""
-        spec, lookup = self.spec, self.lookup
+    def append_pairs(self, text: str, kind: str, raw_slots: list[int], raw_ids: list[int]) -> int:
+        """Append the known (slot, id) pairs of one token type; returns how many."""
         lower = text.lower()
         size = len(lower)
-        cut_lower = lower[:spec.max_value_chars]
+        spec = self.spec
         # Lengths are sorted ascending, so the affixes that fit are a prefix of the label list and
         # map(add, labels, values) pairs them correctly (it stops at the shorter).
-        prefixes = [lower[:n] for n in spec.prefix_lengths if n <= size]
-        suffixes = [lower[-n:] for n in spec.suffix_lengths if n <= size]
-        lists = [name for name, words in spec.wordlists if lower in words]
-        case_flags = [name for name, holds in self.text_flags if holds(text)]
-        shape_part = self.shape_ids(text.translate(_SHAPE_TABLE), kind)
-        for (lower_label, prefix_labels, suffix_labels, list_label, flag_label), shape_ids in zip(
-                self.slots, shape_part):
-            names = list(map(add, prefix_labels, prefixes))
-            names += map(add, suffix_labels, suffixes)
-            if lower_label is not None:
-                names.append(lower_label + cut_lower)
-            if list_label is not None and lists:
-                names += [list_label + name for name in lists]
-            if flag_label is not None and case_flags:
-                names += [flag_label + name for name in case_flags]
-            raw += map(lookup, names, repeat(-1))
-            raw += shape_ids
-            sizes.append(len(names) + len(shape_ids))
+        names = list(map(add, self.prefix_labels, [lower[:n] for n in spec.prefix_lengths if n <= size]))
+        names += map(add, self.suffix_labels, [lower[-n:] for n in spec.suffix_lengths if n <= size])
+        if self.use["lower"]:
+            names.append("lower=" + lower[:spec.max_value_chars])
+        if self.use["wordlists"]:
+            names += ["list=" + name for name, words in spec.wordlists if lower in words]
+        names += ["flag=" + name for name, holds in self.text_flags if holds(text)]
+        before = len(raw_ids)
+        for found in map(self.index.get, names):
+            if found is not None:
+                raw_slots += found[0]
+                raw_ids += found[1]
+        slots, ids = self.shape_pairs(text.translate(_SHAPE_TABLE), kind)
+        raw_slots += slots
+        raw_ids += ids
+        return len(raw_ids) - before
+
+
+class _CountingEncoder:
+    """(text, kind) -> (slot, provisional id) of every feature, adding new strings as they come (fit)."""
+
+    def __init__(self, spec: FeatureSpec, provisional: dict[str, int]):
+        self.spec = spec
+        self.provisional = provisional
+
+    def append_pairs(self, text: str, kind: str, raw_slots: list[int], raw_ids: list[int]) -> int:
+        provisional = self.provisional
+        before = len(raw_ids)
+        for slot, strings in enumerate(self.spec.type_strings(text, kind)):
+            raw_ids += [provisional.setdefault(name, len(provisional)) for name in strings]
+            raw_slots += [slot] * len(strings)
+        return len(raw_ids) - before
 
 
 class _RowBuilder:
     """Builds CSR index arrays for batches under one feature-string -> id mapping.
 
     The cache holds, per token type (text, kind), one int64 array: K per-slot counts followed by the
-    known ids of all slots concatenated (slot 0 is the token itself, then the window offsets).
+    ids of all slots concatenated (slot 0 is the token itself, then the window offsets).
     """
 
-    def __init__(self, spec: FeatureSpec, lookup: Lookup, cache_size: int):
+    def __init__(self, spec: FeatureSpec, encoder, constant_id: Callable[[str], int],
+                 cache_size: int):
         self.spec = spec
-        self.lookup = lookup
+        self.encoder = encoder
         self.cache_size = max(1, int(cache_size))
         self.cache: dict[tuple[str, str], np.ndarray] = {}
         self.offsets = np.array(spec.offsets(), dtype=np.int64)
-        self.encoder = _TypeEncoder(spec, lookup, self.cache_size)
-        self._build_constants()
+        self._build_constants(constant_id)
 
-    def _build_constants(self) -> None:
+    def _build_constants(self, constant_id: Callable[[str], int]) -> None:
         """Ids of the position features: bias, first, last, relative buckets, one boundary per offset."""
         names = ["bias", "pos=first", "pos=last"]
         names += [f"rel={b}" for b in range(self.spec.relative_buckets)]
         names += [_boundary_feature(int(o)) for o in self.offsets[1:]]
-        self.constants = np.array([self.lookup(name, -1) for name in names], dtype=np.int64)
+        self.constants = np.array([constant_id(name) for name in names], dtype=np.int64)
         self.constant_known = (self.constants >= 0).astype(np.int64)
         if not self.spec.first_last:
             self.constant_known[1:3] = 0
@@ -530,34 +573,28 @@ class _RowBuilder:
 
     def encode_new(self, keys: list[tuple[str, str]]) -> list[np.ndarray]:
         """Cache entries for new types, built together: one array, then one slice (view) per type."""
-        raw: list[int] = []
-        sizes: list[int] = []
-        append_raw = self.encoder.append_raw
-        for text, kind in keys:
-            append_raw(text, kind, raw, sizes)
-        k = len(self.offsets)
-        raw_ids = np.array(raw, dtype=np.int64)
-        slot_sizes = np.array(sizes, dtype=np.int64)                        # (M*K,)
-        known = raw_ids >= 0
-        known_before = np.zeros(len(raw_ids) + 1, dtype=np.int64)             # known in raw[:i]
-        np.cumsum(known, out=known_before[1:])
-        slot_end = np.cumsum(slot_sizes)
-        slot_counts = (known_before[slot_end] - known_before[slot_end - slot_sizes]).reshape(-1, k)
-        entry_lengths = k + slot_counts.sum(axis=1)                          # (M,)
+        raw_slots: list[int] = []
+        raw_ids: list[int] = []
+        append_pairs = self.encoder.append_pairs
+        pair_counts = [append_pairs(text, kind, raw_slots, raw_ids) for text, kind in keys]
+        k, n_types = len(self.offsets), len(keys)
+        per_type = np.array(pair_counts, dtype=np.int64)                      # (M,)
+        type_of_pair = np.repeat(np.arange(n_types, dtype=np.int64), per_type)
+        sort_key = type_of_pair * k + np.array(raw_slots, dtype=np.int64)    # (R,)
+        order = np.argsort(sort_key, kind="stable")       # pairs grouped by type, then by slot
+        slot_counts = np.bincount(sort_key, minlength=n_types * k).reshape(n_types, k)
+        entry_lengths = k + per_type
         entry_end = np.cumsum(entry_lengths)
         entry_start = entry_end - entry_lengths
         out = np.empty(int(entry_end[-1]), dtype=np.int64)
         out[(entry_start[:, None] + np.arange(k)).ravel()] = slot_counts.ravel()
-        # Known ids keep their order; each lands after its type's counts and the known ids before it.
-        raw_per_type = slot_sizes.reshape(-1, k).sum(axis=1)
-        raw_start = np.cumsum(raw_per_type) - raw_per_type
-        type_of_raw = np.repeat(np.arange(len(keys)), raw_per_type)
-        rank = known_before[1:][known] - 1 - known_before[raw_start][type_of_raw[known]]
-        out[entry_start[type_of_raw[known]] + k + rank] = raw_ids[known]
+        pair_start = np.cumsum(per_type) - per_type
+        rank = np.arange(len(order), dtype=np.int64) - pair_start[type_of_pair]   # type_of_pair is sorted
+        out[entry_start[type_of_pair] + k + rank] = np.array(raw_ids, dtype=np.int64)[order]
         return [out[a:b] for a, b in zip(entry_start.tolist(), entry_end.tolist())]
 
     def encode_type(self, key: tuple[str, str]) -> np.ndarray:
-        """Per-slot counts then ids for one (text, kind): (K + known ids,) int64."""
+        """Per-slot counts then ids for one (text, kind): (K + ids,) int64."""
         return self.encode_new([key])[0]
 
     def entries_for(self, keys: list[tuple[str, str]]) -> list[np.ndarray]:
@@ -664,7 +701,9 @@ class FeatureExtractor:
         if len(self.feature_id) != len(self._vocabulary):
             raise DataError("feature vocabulary has repeated entries")
         # A new vocabulary means new ids: start a fresh cache.
-        self._rows = _RowBuilder(self.spec, self.feature_id.get, self.cache_size)
+        encoder = _VocabularyEncoder(self.spec, self.feature_id, self.cache_size)
+        self._rows = _RowBuilder(self.spec, encoder, lambda name: self.feature_id.get(name, -1),
+                                 self.cache_size)
 
     @property
     def n_features(self) -> int:
@@ -678,10 +717,10 @@ class FeatureExtractor:
             raise ConfigError(f"min_count: must be a positive integer, got {min_count!r}")
         provisional: dict[str, int] = {}
 
-        def grow(name: str, default: int) -> int:   # every feature is known while counting
+        def grow(name: str) -> int:
             return provisional.setdefault(name, len(provisional))
 
-        rows = _RowBuilder(self.spec, grow, self.cache_size)
+        rows = _RowBuilder(self.spec, _CountingEncoder(self.spec, provisional), grow, self.cache_size)
         counts = np.zeros(0, dtype=np.int64)
         iterator = iter(sentences)
         while chunk := list(islice(iterator, chunk_size)):
