@@ -105,8 +105,25 @@ def read_records(path: Path) -> list[dict]:
     return [orjson.loads(line) for line in path.read_bytes().splitlines()]
 
 
+def _die_with_parent() -> None:
+    """In the child: SIGKILL when the test process dies (Linux prctl PR_SET_PDEATHSIG), so a failed
+    or interrupted test never leaves a daemon running."""
+    try:
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)  # 1 = PR_SET_PDEATHSIG
+    except Exception:
+        pass
+
+
 class DaemonProcess:
-    """``python -m streamtag.daemon --config FILE`` as a subprocess, stderr captured to a file."""
+    """``python -m streamtag.daemon --config FILE`` as a subprocess, stderr captured to a file.
+
+    Every started process is remembered in ``DaemonProcess.started`` so a test fixture can kill
+    what a failing test left running (``kill_leftovers``).
+    """
+
+    started: list["DaemonProcess"] = []
 
     def __init__(self, config: Path, log_path: Path) -> None:
         self.config = config
@@ -119,9 +136,18 @@ class DaemonProcess:
         self.process = subprocess.Popen(
             [sys.executable, "-m", "streamtag.daemon", "--config", str(self.config)],
             stdout=log, stderr=log, stdin=subprocess.DEVNULL, cwd=REPO, env=env,
+            preexec_fn=_die_with_parent,
         )
         log.close()
+        DaemonProcess.started.append(self)
         return self
+
+    @classmethod
+    def kill_leftovers(cls) -> None:
+        for daemon in cls.started:
+            if daemon.running():
+                daemon.kill()
+        cls.started.clear()
 
     @property
     def pid(self) -> int:
@@ -178,6 +204,8 @@ class InProcessDaemon:
     ``write`` replaces ``os.write`` for the output and review files.
     """
 
+    started: list["InProcessDaemon"] = []
+
     def __init__(self, config_path: Path, write=os.write, overrides: dict | None = None) -> None:
         import threading
 
@@ -195,7 +223,16 @@ class InProcessDaemon:
 
     def start(self) -> "InProcessDaemon":
         self.thread.start()
+        InProcessDaemon.started.append(self)
         return self
+
+    @classmethod
+    def stop_leftovers(cls) -> None:
+        for daemon in cls.started:
+            if daemon.thread.is_alive():
+                daemon.daemon.request_stop()
+                daemon.thread.join(30)
+        cls.started.clear()
 
     def stop(self, timeout: float = 60) -> int | None:
         self.daemon.request_stop()
