@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 
 import orjson
 import pytest
-from hypothesis import HealthCheck, settings
+from hypothesis import HealthCheck, event, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, precondition, rule
 
@@ -567,6 +567,7 @@ class Generation:
 
 NAMES = ("app.log", "app.log.1", "app.log.2")
 IDLE_SECONDS = 5.0
+MAX_LINE_BYTES = 24  # small, so that some written lines (8-byte tag + up to 30 bytes) are cut
 
 
 class FollowerMachine(RuleBasedStateMachine):
@@ -624,7 +625,7 @@ class FollowerMachine(RuleBasedStateMachine):
 
     def unique_line(self, width: int) -> bytes:
         self.counter += 1
-        return b"L%06d:" % self.counter + b"abcdefghijklmnopqrstuvwxyz"[:width]
+        return b"L%06d:" % self.counter + (b"abcdefghijklmnopqrstuvwxyz0123"[:width])
 
     def remove(self, name: str) -> None:
         generation = self.at.pop(name)
@@ -646,7 +647,7 @@ class FollowerMachine(RuleBasedStateMachine):
 
     def make_follower(self, saved):
         return Follower(self.inputs, saved=saved, clock=self.clock, idle_flush_seconds=IDLE_SECONDS,
-                        on_warning=lambda message: None)
+                        max_line_bytes=MAX_LINE_BYTES, on_warning=lambda message: None)
 
     def teardown(self):
         if self.follower is not None:
@@ -655,7 +656,7 @@ class FollowerMachine(RuleBasedStateMachine):
 
     # -- writer actions
 
-    @rule(name=st.sampled_from(NAMES), count=st.integers(1, 4), width=st.integers(0, 20))
+    @rule(name=st.sampled_from(NAMES), count=st.integers(1, 4), width=st.integers(0, 30))
     def append_lines(self, name, count, width):
         if name not in self.at:
             if name != "app.log":
@@ -663,7 +664,7 @@ class FollowerMachine(RuleBasedStateMachine):
             self.new_generation(name)  # a logger re-creates its file when it finds it gone
         self.write(name, b"".join(self.unique_line(width) + b"\n" for _ in range(count)))
 
-    @rule(name=st.sampled_from(NAMES), width=st.integers(0, 20))
+    @rule(name=st.sampled_from(NAMES), width=st.integers(0, 30))
     def append_half_line(self, name, width):
         if name in self.at:
             self.write(name, self.unique_line(width))  # completed by the next append to this file
@@ -745,6 +746,12 @@ class FollowerMachine(RuleBasedStateMachine):
     def pause(self, seconds):
         self.clock.advance(seconds)
 
+    @rule(batch=st.integers(1, 40))
+    def daemon_cycle(self, batch):
+        """The daemon's loop: poll, read a batch, (write it,) checkpoint."""
+        self.poll_and_read(batch)
+        self.commit()
+
     @rule()
     def commit(self):
         self.saved = orjson.loads(orjson.dumps(self.follower.snapshot()))
@@ -756,6 +763,7 @@ class FollowerMachine(RuleBasedStateMachine):
         self.emitted = list(self.committed)  # only what was committed counts
         self.follower = self.make_follower(self.saved)
         restored = self.followed_inodes()
+        event(f"restart: {min(len(restored), 3)}+ file(s) resumed from the snapshot")
         for generation in self.generations:
             on_disk = any(g is generation for g in self.at.values())
             name = next((n for n, g in self.at.items() if g is generation), None)
@@ -771,9 +779,11 @@ class FollowerMachine(RuleBasedStateMachine):
                 self.collect(lines)
             self.clock.advance(IDLE_SECONDS / 2 + 0.1)
         ends = self.lines_per_generation()
-        for generation in self.generations:
-            if generation.lossy or not generation.content:
-                continue
+        complete = [g for g in self.generations if not g.lossy and g.content]
+        event(f"drain: {min(len(complete), 4)}+ generation(s) must be complete")
+        lossy = [g for g in self.generations if g.lossy and g.content]
+        event(f"drain: {min(len(lossy), 4)}+ generation(s) may have lost lines")
+        for generation in complete:
             assert ends.get(generation.ident) == len(generation.content), (
                 f"generation {generation.ident} (inode {generation.ino}) read to "
                 f"{ends.get(generation.ident)} of {len(generation.content)} bytes"
@@ -791,8 +801,14 @@ class FollowerMachine(RuleBasedStateMachine):
     def matches(generation: Generation, line: RawLine) -> bool:
         piece = bytes(generation.content[line.start:line.end])
         if FLAG_NO_NEWLINE in line.flags:
-            return piece == line.data and b"\n" not in piece
-        return piece == line.data + b"\n"
+            body, complete = piece, True
+        else:
+            body, complete = piece[:-1], piece.endswith(b"\n")
+        if not complete or b"\n" in body:
+            return False
+        if FLAG_TRUNCATED in line.flags:
+            return len(body) > MAX_LINE_BYTES and line.data == body[:MAX_LINE_BYTES]
+        return len(body) <= MAX_LINE_BYTES and line.data == body
 
     @invariant()
     def lines_are_exact_gap_free_and_once(self) -> None:
