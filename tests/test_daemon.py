@@ -18,8 +18,10 @@ import errno
 import json
 import os
 import random
+import shutil
 import signal
 import stat
+import subprocess
 import threading
 import time
 from pathlib import Path
@@ -531,3 +533,51 @@ def test_missing_model_is_one_line_and_exit_1(tmp_path):
     assert daemon.wait(60) == 1  # ModelError: the project's exit code 1
     text = daemon.log_text().strip().splitlines()
     assert len(text) == 1 and "no-such-model.stm" in text[0] and "Traceback" not in text[0]
+
+
+# -- the sample service unit ------------------------------------------------------------------------
+
+SERVICE_UNIT = Path(__file__).resolve().parent.parent / "config" / "streamtag.service"
+
+
+def unit_settings() -> dict[str, list[str]]:
+    """[Service] settings of the sample unit (systemd.syntax(7): "Key=value" lines, '#' comments)."""
+    settings: dict[str, list[str]] = {}
+    section = None
+    for line in SERVICE_UNIT.read_text().splitlines():
+        line = line.strip()
+        if not line or line.startswith(("#", ";")):
+            continue
+        if line.startswith("["):
+            section = line
+            continue
+        key, _, value = line.partition("=")
+        if section == "[Service]":
+            settings.setdefault(key, []).append(value)
+    return settings
+
+
+def test_service_unit_confines_the_daemon():
+    settings = unit_settings()
+    # systemd.exec(5): the sandboxing directives the deployment relies on
+    assert settings["User"][0] not in ("root", "0")
+    assert settings["NoNewPrivileges"] == ["yes"]
+    assert settings["PrivateNetwork"] == ["yes"]
+    assert settings["ProtectSystem"] == ["strict"]  # all read-only but what is named writable
+    assert settings["ReadOnlyPaths"][0].strip()
+    assert settings["UMask"] == ["0077"]  # chmod(2)/umask(2): new files owner-only
+    assert settings["StateDirectory"] == ["streamtag"]
+    assert settings["ExecReload"][0].endswith("kill -HUP $MAINPID")  # signal(7): SIGHUP = model reload
+    assert settings["KillSignal"] == ["SIGTERM"]
+    assert " watch --config " in settings["ExecStart"][0]
+
+
+@pytest.mark.skipif(not shutil.which("systemd-analyze"), reason="systemd-analyze is not installed")
+def test_service_unit_passes_systemd_analyze(tmp_path):
+    # systemd-analyze verify (the reference parser) reports unknown or malformed settings
+    unit = tmp_path / "streamtag.service"
+    unit.write_text(SERVICE_UNIT.read_text())
+    result = subprocess.run(["systemd-analyze", "verify", str(unit)], capture_output=True, text=True, timeout=60)
+    problems = [line for line in (result.stdout + result.stderr).splitlines()
+                if "is not executable" not in line and line.strip()]  # the sample's paths do not exist here
+    assert problems == []
