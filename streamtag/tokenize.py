@@ -86,13 +86,15 @@ _END_IPV4 = r"(?!\w|\.\w)"
 _END_IPV6 = r"(?!\w|[.:]\w)"
 _END_NUM = r"(?!\w|\.\d)"
 
+_URL_PLAIN = r"[^\s<>\"'`{}|\\^()\[\].,;:!?]"  # body characters that may also end a URL
 _URL = (
     # Scheme (RFC 3986 section 3.1) bounded to 32 characters, so a failing attempt costs O(1).
     r"(?>[A-Za-z][A-Za-z0-9+.\-]{0,31}://)"
     # Body: anything but white space, quotes, angle/curly brackets; '[...]' host literals and
-    # balanced '(...)' kept whole. Trailing sentence punctuation is given back (look-behind).
-    r"(?:[^\s<>\"'`{}|\\^()\[\]]|\[[0-9A-Za-z:.%_~\-]{0,64}\]|\([^\s()<>\"']{0,256}\))*"
-    r"(?<![.,;:!?'])"
+    # balanced '(...)' kept whole. '.,;:!?' only when more of the URL follows, so trailing
+    # sentence punctuation stays out. All possessive: one pass, no backtracking.
+    rf"(?:{_URL_PLAIN}++|[.,;:!?]++(?={_URL_PLAIN}|[\[(])"
+    r"|\[[0-9A-Za-z:.%_~\-]{0,64}\]|\([^\s()<>\"']{0,64}\))*+"
 )
 
 _DOMAIN_LABEL = r"[^\W_][\w\-]{0,62}+"
@@ -130,8 +132,8 @@ _MAC = rf"{_HEX}{{2}}(?::{_HEX}{{2}}){{5}}(?![\w:\-])|{_HEX}{{2}}(?:-{_HEX}{{2}}
 
 _PATH_CHAR = r"[\w.+@%~\-/]"
 _PATH_END = r"[\w+@%~\-/]"  # a path does not end with '.', so "see /var/log/x.log." drops the '.'
-_WIN_CHAR = r"[\w.+@%~$#&!\-\\]"
-_WIN_END = r"[\w+@%~$#&!\-\\]"
+_WIN_CHAR = r"[\w.+@%~$#&!\-\\/]"
+_WIN_END = r"[\w+@%~$#&!\-\\/]"
 _PATH = (
     # Unix: /abs, ./rel, ../rel, ~/x, ~user/x, with at least one character after the first '/';
     # not after a word character (read/write stays three tokens).
