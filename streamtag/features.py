@@ -543,6 +543,33 @@ class _CountingEncoder:
         return len(raw_ids) - before
 
 
+def _token_types(sentences: Sequence[tuple[list[str], list[str]]], n_tokens: int):
+    """Type index of every token and the distinct (text, kind) types: ((N,) int64, list of U keys).
+
+    This is the only per-token Python work, and it runs in C loops (dict.fromkeys, map). Texts and
+    kinds are indexed separately because building and hashing a (text, kind) tuple per token costs
+    several times more; the pair is rebuilt for distinct types only.
+    """
+    texts = list(chain.from_iterable(s[0] for s in sentences))
+    kinds = list(chain.from_iterable(s[1] for s in sentences))
+    text_index = dict.fromkeys(texts)
+    distinct_texts = list(text_index)
+    text_index.update(zip(distinct_texts, range(len(distinct_texts))))
+    kind_index = dict.fromkeys(kinds)
+    distinct_kinds = list(kind_index)
+    kind_index.update(zip(distinct_kinds, range(len(distinct_kinds))))
+    text_id = np.fromiter(map(text_index.__getitem__, texts), dtype=np.int64, count=n_tokens)
+    if len(distinct_kinds) == 1:
+        return text_id, [(text, distinct_kinds[0]) for text in distinct_texts]
+    kind_id = np.fromiter(map(kind_index.__getitem__, kinds), dtype=np.int64, count=n_tokens)
+    pair_id = text_id * len(distinct_kinds) + kind_id
+    distinct_pairs, token_type = np.unique(pair_id, return_inverse=True)
+    n_kinds = len(distinct_kinds)
+    keys = [(distinct_texts[pair // n_kinds], distinct_kinds[pair % n_kinds])
+            for pair in distinct_pairs.tolist()]
+    return token_type.astype(np.int64, copy=False), keys
+
+
 class _RowBuilder:
     """Builds CSR index arrays for batches under one feature-string -> id mapping.
 
@@ -624,14 +651,8 @@ class _RowBuilder:
         if n_tokens == 0:
             return np.zeros(0, np.int64), np.zeros(1, np.int64), lengths
 
-        # The only per-token Python work: pair text with kind and find its type index (C-level loops).
-        keys = list(zip(chain.from_iterable(s[0] for s in sentences),
-                        chain.from_iterable(s[1] for s in sentences)))
-        type_index = dict.fromkeys(keys)
-        for number, key in enumerate(type_index):
-            type_index[key] = number
-        token_type = np.fromiter(map(type_index.__getitem__, keys), dtype=np.int64, count=n_tokens)
-        entries = self.entries_for(list(type_index))
+        token_type, type_keys = _token_types(sentences, n_tokens)
+        entries = self.entries_for(type_keys)
 
         # Flat source array: constants first, then every type's entry.
         k = len(self.offsets)
