@@ -332,6 +332,64 @@ def _max_plus(values: np.ndarray, trans: np.ndarray, out: np.ndarray, scratch: n
     return out
 
 
+class _MaxPlus:
+    """out[j, r] = max_i values[i, r] + trans[i, j] for (L, n) blocks; exact, bit for bit.
+
+    Shortcut for the common case of a clear leader: if the best previous label i* of column r leads
+    the runner-up by more than need[i*] = max_j (max_{k != i*} trans[k, j] - trans[i*, j]) over the
+    next labels j reachable from every label ("dense"), then i* wins every such j and the maxima are
+    values[i*, r] + trans[i*, j]. Other columns take the full pass. Next labels with forbidden
+    predecessors (I-X under BIO) are reduced over their few allowed predecessors only.
+    """
+
+    def __init__(self, trans: np.ndarray):
+        n_labels = trans.shape[0]
+        allowed = np.isfinite(trans)
+        self.dense = np.flatnonzero(allowed.all(axis=0))
+        self.trans_dense = np.ascontiguousarray(trans[:, self.dense])  # (L, D)
+        ordered = np.sort(self.trans_dense, axis=0)
+        top1 = ordered[-1]
+        top2 = ordered[-2] if n_labels > 1 else np.full_like(top1, -np.inf)
+        leader = self.trans_dense.argmax(axis=0)
+        others = np.where(np.arange(n_labels)[:, None] == leader[None, :], top2[None, :], top1[None, :])
+        self.need = (others - self.trans_dense).max(axis=1) if self.dense.size else np.full(n_labels, -np.inf)
+        sparse_next = np.flatnonzero(~allowed.all(axis=0))
+        pair_next, pair_prev = np.nonzero(allowed[:, sparse_next].T)  # sorted by next label
+        self.sparse_reached = sparse_next[np.unique(pair_next)]
+        self.sparse_unreached = np.setdiff1d(sparse_next, self.sparse_reached)
+        self.pair_prev = pair_prev
+        self.pair_trans = trans[pair_prev, sparse_next[pair_next]][:, None]
+        self.group_starts = np.flatnonzero(np.r_[True, pair_next[1:] != pair_next[:-1]]) if pair_next.size else pair_next
+
+    def __call__(self, values: np.ndarray) -> np.ndarray:
+        n_labels, count = values.shape
+        out = np.empty((n_labels, count))
+        if self.dense.size:
+            out[self.dense] = self._dense(values)
+        if self.pair_prev.size:
+            candidates = values[self.pair_prev]
+            candidates += self.pair_trans
+            out[self.sparse_reached] = np.maximum.reduceat(candidates, self.group_starts, axis=0)
+        out[self.sparse_unreached] = -np.inf
+        return out
+
+    def _dense(self, values: np.ndarray) -> np.ndarray:
+        count = values.shape[1]
+        columns = np.arange(count)
+        leader = values.argmax(axis=0)
+        top = values[leader, columns]
+        others = values.copy()
+        others[leader, columns] = -np.inf
+        with np.errstate(invalid="ignore"):  # -inf - -inf (no finite value) is NaN: not decided
+            decided = (top - others.max(axis=0)) > self.need[leader]
+        best = self.trans_dense[leader].T + top  # (D, n)
+        undecided = np.flatnonzero(~decided)
+        if undecided.size:
+            size = (self.dense.size, undecided.size)
+            best[:, undecided] = _max_plus(values[:, undecided], self.trans_dense, np.empty(size), np.empty(size))
+        return best
+
+
 def viterbi(E, lengths, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
     """Best label sequence of each sequence.
 
@@ -344,16 +402,13 @@ def viterbi(E, lengths, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
     end = np.asarray(end, dtype=np.float64)
     Ep = pk.to_packed(E)
     delta = np.empty_like(Ep)
+    max_plus = _MaxPlus(trans)
     if pk.max_len:
         first = pk.cols(0)
         delta[:, first] = np.asarray(start, dtype=np.float64)[:, None] + Ep[:, first]
-        widest = int(pk.batch_sizes[0])
-        out, scratch = np.empty((E.shape[1], widest)), np.empty((E.shape[1], widest))
     for t in range(1, pk.max_len):
         cur, prev = pk.cols(t), pk.cols(t - 1, pk.batch_sizes[t])
-        count = cur.stop - cur.start
-        best = _max_plus(delta[:, prev], trans, out[:, :count], scratch[:, :count])
-        np.add(best, Ep[:, cur], out=delta[:, cur])
+        np.add(max_plus(delta[:, prev]), Ep[:, cur], out=delta[:, cur])
     # No back-pointers are stored: walking back, the best predecessor of the chosen label is found
     # again from delta (same sums, same rounding), which costs (L, n) per step instead of (L, L, n).
     final = delta[:, pk.last_packed] + end[:, None]

@@ -151,6 +151,24 @@ def test_log_z_marginals_viterbi_match_brute_force(labels, seed):
 
 
 @pytest.mark.parametrize("labels,seed", CASES)
+@pytest.mark.parametrize("scale", [0.3, 6.0])
+def test_viterbi_matches_brute_force_on_flat_and_confident_models(labels, seed, scale):
+    # Small scores leave many near-ties between predecessors; large ones give clear leaders. Both
+    # must give the brute-force best path (Lafferty et al. 2001 definition, enumerated).
+    rng = np.random.default_rng(600 + seed)
+    lengths = np.concatenate([random_lengths(rng) for _ in range(8)])
+    E, trans, start, end = random_model(rng, labels, lengths, scale=scale)
+    best_labels, best_scores = crf.viterbi(E, lengths, trans, start, end)
+    for b, (offset, emissions) in enumerate(sequences(E, lengths)):
+        n = emissions.shape[0]
+        if n == 0:
+            continue
+        paths, scores = brute_force(emissions, trans, start, end)
+        assert abs(best_scores[b] - scores.max()) < EXACT
+        np.testing.assert_array_equal(best_labels[offset:offset + n], paths[scores.argmax()])
+
+
+@pytest.mark.parametrize("labels,seed", CASES)
 @pytest.mark.parametrize("k", [2, 3, 4, 5])
 def test_nbest_matches_brute_force(labels, seed, k):
     rng = np.random.default_rng(100 + seed)
