@@ -351,3 +351,11 @@ def test_sentence_and_stats_defaults():
     sentence = Sentence(texts=["a"], kinds=["word"], tags=["O"])
     assert sentence.weight == 1.0 and sentence.text is None and sentence.starts is None
     assert ReadStats().skipped == 0
+
+
+def test_byte_order_mark_and_crlf_are_ignored(tmp_path):
+    # RFC 8259 section 8.1: parsers MAY ignore a byte order mark; CRLF line ends are common practice.
+    body = '\ufeff{"text": "alpha beta", "spans": [{"start": 6, "end": 10, "label": "x"}]}\r\n'.encode()
+    sentences, stats = read_jsonl(write(tmp_path, "bom.jsonl", body, binary=True))
+    assert stats.records == 1 and sentences[0].text == "alpha beta"
+    assert sentences[0].tags == overlap_tags("alpha beta", [(6, 10, "x")])
