@@ -56,6 +56,7 @@ class Sentence:
     text: str | None = None
     starts: list[int] | None = None
     ends: list[int] | None = None
+    reviewed: bool = False  # a person's decision from `streamtag review` (the record has "decision")
 
 
 @dataclass
@@ -135,8 +136,8 @@ def _parse_span(span: object, text_length: int) -> tuple[int, int, str]:
     return start, end, label
 
 
-def _parse_record(line: str) -> tuple[str, list[tuple[int, int, str]], float]:
-    """(text, character spans sorted, weight) of one JSON line; _BadRecord if unusable."""
+def _parse_record(line: str) -> tuple[str, list[tuple[int, int, str]], float, bool]:
+    """(text, character spans sorted, weight, reviewed) of one JSON line; _BadRecord if unusable."""
     try:
         record = orjson.loads(line)
     except orjson.JSONDecodeError as exc:
@@ -156,7 +157,7 @@ def _parse_record(line: str) -> tuple[str, list[tuple[int, int, str]], float]:
     weight = record.get("weight", 1.0)
     if not _is_weight(weight):
         raise _BadRecord('"weight" must be a finite number >= 0')
-    return text, spans, float(weight)
+    return text, spans, float(weight), "decision" in record
 
 
 def _sentence_from_record(text: str, char_spans, weight: float, stats: ReadStats) -> Sentence:
@@ -185,11 +186,12 @@ def read_jsonl(path, skip_bad: bool = False) -> tuple[list[Sentence], ReadStats]
         try:
             if line is None:
                 raise _BadRecord("invalid UTF-8")
-            text, char_spans, weight = _parse_record(line)
+            text, char_spans, weight, reviewed = _parse_record(line)
         except _BadRecord as exc:
             _reject(stats, path, number, str(exc), skip_bad)
             continue
         sentence = _sentence_from_record(text, char_spans, weight, stats)
+        sentence.reviewed = reviewed
         if not sentence.texts:
             stats.empty += 1
             continue

@@ -13,6 +13,7 @@ Confidence rules (documented in the README):
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from itertools import chain
 
 import numpy as np
 
@@ -149,98 +150,117 @@ class Tagger:
     # -- from label paths to spans ----------------------------------------------------------------
 
     def _assemble(self, lines, batch, labels, token_conf, emissions, fb) -> list[TaggedLine]:
+        """Label paths of the sequences -> spans and confidences per line, vectorised over the batch.
+
+        Windows of a split line overlap; each token's label comes from the window that owns it, so
+        the owned tokens, in order, are exactly the lines' tokens. Chunks are read off that merged
+        path (an I-X that does not continue a chunk at a window seam starts one, as in CoNLL rules).
+        """
+        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
         seq_of_token = np.repeat(np.arange(batch.lengths.size), batch.lengths)
-        pos_in_seq = np.arange(labels.size) - np.repeat(np.cumsum(batch.lengths) - batch.lengths, batch.lengths)
-        pos_in_line = pos_in_seq + batch.seq_first_token[seq_of_token]
+        pos_in_line = np.arange(labels.size) - seq_offsets[seq_of_token] + batch.seq_first_token[seq_of_token]
         owned = (pos_in_line >= batch.owned_from[seq_of_token]) & (pos_in_line < batch.owned_to[seq_of_token])
-        split_lines = set(np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist())
+        line_labels, line_conf, owner = labels[owned], token_conf[owned], seq_of_token[owned]
+        line_lengths = np.array([len(t.texts) for t in batch.token_lists], dtype=np.int64)
+        line_offsets = np.cumsum(line_lengths) - line_lengths
 
-        span_seq, span_first, span_stop, span_type = spans_from_label_ids(labels, batch.lengths, self.model.labels)
-        span_conf = np.exp(
-            crf.span_log_prob(fb, emissions, batch.lengths, self.trans, self.end, span_seq, span_first, span_stop,
-                              self.b_index[span_type], self.i_index[span_type])
-        )
-        # A window keeps a span only when it owns the span's first token.
-        offsets = np.cumsum(batch.lengths) - batch.lengths
-        span_keep = owned[offsets[span_seq] + span_first] if span_seq.size else np.zeros(0, bool)
+        span_line, span_first, span_stop, span_type = spans_from_label_ids(line_labels, line_lengths,
+                                                                           self.model.labels)
+        span_conf = self._span_confidence(batch, fb, emissions, line_conf, line_offsets, owner,
+                                          span_line, span_first, span_stop, span_type)
+        line_min = np.ones(len(lines))
+        nonempty = line_lengths > 0
+        if nonempty.any():
+            line_min[nonempty] = np.minimum.reduceat(line_conf, line_offsets[nonempty])
+        np.minimum.at(line_min, span_line, span_conf)
 
-        results = [TaggedLine(text=line, spans=[], confidence=1.0, n_tokens=len(tokens.texts))
-                   for line, tokens in zip(lines, batch.token_lists)]
-        self._token_floor(results, batch, labels, token_conf, owned, seq_of_token, pos_in_line)
-        for s in np.flatnonzero(span_keep):
-            line_index = int(batch.seq_line[span_seq[s]])
-            tokens = batch.token_lists[line_index]
-            first_token = int(batch.seq_first_token[span_seq[s]] + span_first[s])
-            last_token = int(batch.seq_first_token[span_seq[s]] + span_stop[s] - 1)
-            start, end = tokens.starts[first_token], tokens.ends[last_token]
-            label = self.entity_types[span_type[s]]
-            conf = float(span_conf[s])
-            result = results[line_index]
-            result.spans.append(TaggedSpan(start, end, label, result.text[start:end], conf))
-            if conf < result.confidence:
-                result.confidence = conf
-                result.weakest = f"span {result.text[start:end]!r} as {label} at {conf:.3f}"
-        for line_index in split_lines:
+        starts = np.fromiter(chain.from_iterable(t.starts for t in batch.token_lists), np.int64, line_labels.size)
+        ends = np.fromiter(chain.from_iterable(t.ends for t in batch.token_lists), np.int64, line_labels.size)
+        char_start = starts[line_offsets[span_line] + span_first].tolist() if span_line.size else []
+        char_end = ends[line_offsets[span_line] + span_stop - 1].tolist() if span_line.size else []
+        results = [TaggedLine(text=line, spans=[], confidence=conf, n_tokens=n)
+                   for line, conf, n in zip(lines, line_min.tolist(), line_lengths.tolist())]
+        # One Python step per span (not per token): spans are what the output is made of.
+        for line_index, start, end, type_index, conf in zip(span_line.tolist(), char_start, char_end,
+                                                            span_type.tolist(), span_conf.tolist()):
+            text = lines[line_index]
+            results[line_index].spans.append(TaggedSpan(start, end, self.entity_types[type_index],
+                                                        text[start:end], conf))
+        for line_index in np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist():
             results[line_index].flags.append("split")
-            results[line_index].spans.sort(key=lambda span: span.start)
+        self._describe_weakest(results, batch, line_labels, line_conf, line_offsets, line_lengths)
         return results
 
-    def _token_floor(self, results, batch, labels, token_conf, owned, seq_of_token, pos_in_line) -> None:
-        """Set each line's confidence to its least confident owned token (vectorised per batch)."""
-        if labels.size == 0:
-            return
-        token_line = batch.seq_line[seq_of_token]
-        conf = np.where(owned, token_conf, np.inf)
-        line_min = np.full(len(results), np.inf)
-        np.minimum.at(line_min, token_line, conf)
-        # Position of the weakest token: the owned token whose confidence equals its line's minimum.
-        is_weakest = owned & (conf == line_min[token_line])
-        weakest_tokens = np.flatnonzero(is_weakest)
-        seen = set()
-        for t in weakest_tokens:
-            line_index = int(token_line[t])
-            if line_index in seen:
+    def _span_confidence(self, batch, fb, emissions, line_conf, line_offsets, owner,
+                         span_line, span_first, span_stop, span_type) -> np.ndarray:
+        """Exact probability of each span (constrained forward-backward) in the window owning it.
+
+        A span that runs past the end of its owning window (only at a seam of a split line) has no
+        exact probability in one window; it gets the lowest marginal of its tokens instead.
+        """
+        if span_line.size == 0:
+            return np.zeros(0)
+        seq = owner[line_offsets[span_line] + span_first]
+        local_first = span_first - batch.seq_first_token[seq]
+        local_stop = span_stop - batch.seq_first_token[seq]
+        fits = local_stop <= batch.lengths[seq]
+        conf = np.empty(span_line.size)
+        conf[fits] = np.exp(crf.span_log_prob(
+            fb, emissions, batch.lengths, self.trans, self.end, seq[fits], local_first[fits], local_stop[fits],
+            self.b_index[span_type[fits]], self.i_index[span_type[fits]]))
+        for s in np.flatnonzero(~fits).tolist():  # rare: only spans crossing a window seam
+            first = line_offsets[span_line[s]] + span_first[s]
+            conf[s] = line_conf[first : line_offsets[span_line[s]] + span_stop[s]].min()
+        return conf
+
+    def _describe_weakest(self, results, batch, line_labels, line_conf, line_offsets, line_lengths) -> None:
+        """Name what set each line's confidence: its weakest span, else its weakest token."""
+        for line_index, result in enumerate(results):
+            if result.n_tokens == 0:
                 continue
-            seen.add(line_index)
-            result = results[line_index]
-            tokens = batch.token_lists[line_index]
-            position = int(pos_in_line[t])
-            result.confidence = float(line_min[line_index])
-            label = self.model.labels[labels[t]]
-            result.weakest = f"token {tokens.texts[position]!r} as {label} at {result.confidence:.3f}"
+            weakest_span = min(result.spans, key=lambda span: span.confidence, default=None)
+            if weakest_span is not None and weakest_span.confidence <= result.confidence:
+                result.weakest = (f"span {weakest_span.text!r} as {weakest_span.label} "
+                                  f"at {weakest_span.confidence:.3f}")
+                continue
+            first = line_offsets[line_index]
+            position = int(np.argmin(line_conf[first : first + line_lengths[line_index]]))
+            label = self.model.labels[line_labels[first + position]]
+            token = batch.token_lists[line_index].texts[position]
+            result.weakest = f"token {token!r} as {label} at {result.confidence:.3f}"
 
     # -- runner-up labelling for doubtful lines -----------------------------------------------------
 
     def _add_runner_up(self, results, batch, emissions, fb, review_below: float) -> None:
-        """Second-best path for lines under the threshold (only those: n-best costs k times Viterbi)."""
-        # Split lines get no runner-up: the second-best path of one window is not one of the line.
-        doubtful_lines = [i for i, r in enumerate(results) if r.confidence < review_below and "split" not in r.flags]
-        if not doubtful_lines:
+        """Second-best path for lines under the threshold (only those: n-best costs k times Viterbi).
+
+        Split lines get none: the second-best path of one window is not a labelling of the line.
+        """
+        single = np.bincount(batch.seq_line, minlength=len(results)) == 1
+        doubtful_line = np.array([r.confidence < review_below for r in results]) & single
+        doubtful_seq = doubtful_line[batch.seq_line]
+        if not doubtful_seq.any():
             return
-        doubtful = np.isin(batch.seq_line, doubtful_lines)
-        offsets = np.cumsum(batch.lengths) - batch.lengths
-        token_index = np.concatenate(
-            [np.arange(offsets[s], offsets[s] + batch.lengths[s]) for s in np.flatnonzero(doubtful)]
-        ) if doubtful.any() else np.zeros(0, np.int64)
-        sub_lengths = batch.lengths[doubtful]
-        paths, scores = crf.nbest(emissions[token_index], sub_lengths, self.trans, self.start, self.end, 2)
-        sub_log_z = fb.log_z[doubtful]
+        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
+        sub_lengths = batch.lengths[doubtful_seq]
+        seq_of_token = np.repeat(np.arange(batch.lengths.size), batch.lengths)
+        paths, scores = crf.nbest(emissions[doubtful_seq[seq_of_token]], sub_lengths, self.trans, self.start,
+                                  self.end, 2)
+        second = paths[1]
         sub_offsets = np.cumsum(sub_lengths) - sub_lengths
-        for k, s in enumerate(np.flatnonzero(doubtful)):
-            line_index = int(batch.seq_line[s])
-            result = results[line_index]
-            result.runner_up = []
-            second = paths[1, sub_offsets[k] : sub_offsets[k] + sub_lengths[k]]
-            if sub_lengths[k] == 0 or second[0] < 0:
-                result.runner_up_probability = 0.0  # no other valid labelling exists
-                continue
-            result.runner_up_probability = float(np.exp(scores[k, 1] - sub_log_z[k]))
-            tokens = batch.token_lists[line_index]
-            first_token = int(batch.seq_first_token[s])
-            sp_seq, sp_first, sp_stop, sp_type = spans_from_label_ids(
-                second, np.array([sub_lengths[k]]), self.model.labels)
-            for first, stop, type_index in zip(sp_first, sp_stop, sp_type):
-                start, end = tokens.starts[first_token + first], tokens.ends[first_token + stop - 1]
-                result.runner_up.append(
-                    TaggedSpan(start, end, self.entity_types[type_index], result.text[start:end], None)
-                )
+        has_second = (sub_lengths > 0) & (second[np.minimum(sub_offsets, max(second.size - 1, 0))] >= 0)
+        probability = np.where(has_second, np.exp(scores[:, 1] - fb.log_z[doubtful_seq]), 0.0)
+        sp_seq, sp_first, sp_stop, sp_type = spans_from_label_ids(np.maximum(second, 0), sub_lengths,
+                                                                  self.model.labels)
+        lines_of_sub = batch.seq_line[doubtful_seq].tolist()
+        for k, line_index in enumerate(lines_of_sub):
+            results[line_index].runner_up = []
+            results[line_index].runner_up_probability = float(probability[k])
+        keep = has_second[sp_seq]
+        for k, first, stop, type_index in zip(sp_seq[keep].tolist(), sp_first[keep].tolist(),
+                                              sp_stop[keep].tolist(), sp_type[keep].tolist()):
+            result = results[lines_of_sub[k]]
+            tokens = batch.token_lists[lines_of_sub[k]]
+            start, end = tokens.starts[first], tokens.ends[stop - 1]
+            result.runner_up.append(TaggedSpan(start, end, self.entity_types[type_index], result.text[start:end],
+                                               None))
