@@ -371,6 +371,10 @@ class Daemon:
         except StreamtagError as exc:
             self.log(str(exc))
             return exc.exit_code
+        except OSError as exc:  # e.g. the output folder cannot be created: one line, not a traceback
+            where = f"{exc.filename}: " if exc.filename else ""
+            self.log(f"{where}{exc.strerror or exc}; stopped")
+            return 1
 
     # -- start and stop ------------------------------------------------------------------------
 

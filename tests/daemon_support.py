@@ -116,6 +116,18 @@ def _die_with_parent() -> None:
         pass
 
 
+def _die_with_parent_without_file_override() -> None:
+    """As ``_die_with_parent``, and drop CAP_DAC_OVERRIDE and CAP_DAC_READ_SEARCH from the bounding
+    set before exec (prctl PR_CAPBSET_DROP, capabilities(7)): even root then obeys file modes, so
+    a test can check how the daemon meets "permission denied"."""
+    _die_with_parent()
+    import ctypes
+
+    libc = ctypes.CDLL(None, use_errno=True)
+    for capability in (1, 2):  # CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH
+        libc.prctl(24, capability)  # 24 = PR_CAPBSET_DROP
+
+
 class DaemonProcess:
     """``python -m streamtag.daemon --config FILE`` as a subprocess, stderr captured to a file.
 
@@ -125,9 +137,10 @@ class DaemonProcess:
 
     started: list["DaemonProcess"] = []
 
-    def __init__(self, config: Path, log_path: Path) -> None:
+    def __init__(self, config: Path, log_path: Path, obey_file_modes: bool = False) -> None:
         self.config = config
         self.log_path = log_path
+        self.obey_file_modes = obey_file_modes
         self.process: subprocess.Popen | None = None
 
     def start(self) -> "DaemonProcess":
@@ -136,7 +149,7 @@ class DaemonProcess:
         self.process = subprocess.Popen(
             [sys.executable, "-m", "streamtag.daemon", "--config", str(self.config)],
             stdout=log, stderr=log, stdin=subprocess.DEVNULL, cwd=REPO, env=env,
-            preexec_fn=_die_with_parent,
+            preexec_fn=_die_with_parent_without_file_override if self.obey_file_modes else _die_with_parent,
         )
         log.close()
         DaemonProcess.started.append(self)

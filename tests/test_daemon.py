@@ -471,17 +471,36 @@ def test_file_deleted_while_being_read(tmp_path, model_paths):
     assert [line_id(r) for r in read_records(output)] == list(range(20_000))
 
 
-@pytest.mark.skipif(os.geteuid() == 0, reason="runs as root: chmod 000 does not stop root from reading")
 def test_permission_denied_is_logged_and_retried(tmp_path, model_paths):
     source = tmp_path / "locked.log"
     append_lines(source, numbered("P", 0, 10))
     source.chmod(0)
     config = write_config(tmp_path, [str(source)], model_paths[0][0])
-    daemon = InProcessDaemon(config).start()
+    # Without CAP_DAC_OVERRIDE (capabilities(7)) even root gets EACCES on a mode-000 file.
+    daemon = DaemonProcess(config, tmp_path / "daemon.log", obey_file_modes=True).start()
     wait_until(lambda: "permission denied" in daemon.log_text(), what="the warning")
+    time.sleep(0.5)
+    assert daemon.running()
+    assert count_lines(tmp_path / "out" / "tagged.jsonl") == 0
     source.chmod(0o644)
     wait_until(lambda: count_lines(tmp_path / "out" / "tagged.jsonl") >= 10, what="records once readable")
     assert daemon.stop() == 0
+    assert [line_id(r) for r in read_records(tmp_path / "out" / "tagged.jsonl")] == list(range(10))
+    warnings = [line for line in daemon.log_text().splitlines() if "permission denied" in line]
+    assert len(warnings) == 1  # logged once, retried quietly
+
+
+def test_unwritable_output_folder_is_one_line(tmp_path, model_paths):
+    source = tmp_path / "app.log"
+    append_lines(source, numbered("U", 0, 3))
+    locked = tmp_path / "locked"
+    locked.mkdir(mode=0o500)  # no write permission for anyone without CAP_DAC_OVERRIDE
+    config = write_config(tmp_path, [str(source)], model_paths[0][0],
+                          output={"path": str(locked / "sub" / "out.jsonl")})
+    daemon = DaemonProcess(config, tmp_path / "daemon.log", obey_file_modes=True).start()
+    assert daemon.wait(60) == 1
+    lines = daemon.log_text().strip().splitlines()
+    assert len(lines) == 1 and "Permission denied" in lines[0] and "Traceback" not in lines[0]
 
 
 # -- files, stats -----------------------------------------------------------------------------------
