@@ -452,7 +452,8 @@ def bar_chart_svg(result: Comparison) -> str:
             length = width * value / largest
             parts.append(f'<rect x="{left}" y="{y}" width="{length:.1f}" height="{bar - 2}" '
                          f'fill="{_BAR_COLOURS[kind]}"><title>{_escape(name)} {_escape(kind)}: {value}</title></rect>')
-            parts.append(f'<text x="{left + length + 4:.1f}" y="{y + bar - 3}" font-size="10">{value}</text>')
+            if value:
+                parts.append(f'<text x="{left + length + 4:.1f}" y="{y + bar - 3}" font-size="10">{value}</text>')
             y += bar
         y += gap
     parts.append("</svg>")
