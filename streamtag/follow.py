@@ -706,7 +706,9 @@ def _count_newlines(fd: int, end: int) -> int:
 
 # ---------------------------------------------------------------------- change notices
 
-_CHANGE_EVENTS = frozenset({"created", "modified", "moved", "deleted", "closed"})
+# Writes, renames, deletions, closes after writing and attribute changes (a file made readable).
+# Not "opened"/"closed_no_write": the follower's own reads cause those.
+_CHANGE_EVENTS = frozenset({"created", "modified", "moved", "deleted", "closed", "attrib"})
 
 
 class ChangeWatcher:

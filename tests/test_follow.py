@@ -312,6 +312,20 @@ def test_truncate_then_write_more_than_before_is_caught_by_the_head(tmp_path):
     assert any("rewritten" in message for message in warnings)
 
 
+def test_truncation_between_poll_and_read_does_not_glue_generations(tmp_path):
+    log = tmp_path / "app.log"
+    log.write_bytes(b"gen one line\nheld partial")
+    follower = make_follower([log])
+    assert lines_text(read_all(follower)) == [b"gen one line"]
+    with open(log, "r+b") as handle:  # after poll(), before the next read()
+        handle.truncate(0)
+        handle.write(b"gen two, a longer first line\nand a second\n")
+    lines = follower.read(100)  # no poll() in between
+    # The held partial line of the old content must not be joined to the new content's bytes.
+    assert lines_text(lines) == [b"gen two, a longer first line", b"and a second"]
+    assert lines[0].start == 0
+
+
 def test_delete_and_recreate_reads_the_new_file_from_the_start(tmp_path):
     log = tmp_path / "app.log"
     follower = make_follower([log])
