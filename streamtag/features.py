@@ -416,29 +416,33 @@ def _ragged_gather(source: np.ndarray, starts: np.ndarray, counts: np.ndarray) -
 
 _SHAPE_GROUPS = ("shape", "collapsed_shape", "kind", "length")
 _TEXT_GROUPS = ("lower", "prefix", "suffix", "wordlists")
-_OFFSET_LABEL = re.compile(r"([+-]\d+)\|")
 _AFFIX = re.compile(r"([ps])\d+=")
 
 
-def _group_of(unlabeled: str) -> str | None:
-    """Group that produces a feature string (without its offset label); None for position features."""
-    head = unlabeled.partition("=")[0]
+def _group_of(head: str) -> str | None:
+    """Group that produces a feature string, from the part before its first '=' (offset label
+    removed): "lower" -> lower, "p3" -> prefix, "len<" -> length; None for position features."""
     group = {"lower": "lower", "shape": "shape", "cshape": "collapsed_shape", "kind": "kind",
              "flag": "flags", "list": "wordlists"}.get(head)
     if group is not None:
         return group
-    if unlabeled.startswith("len"):
+    if head.startswith("len"):
         return "length"
-    affix = _AFFIX.match(unlabeled)
-    if affix:
-        return "prefix" if affix.group(1) == "p" else "suffix"
+    if _AFFIX.fullmatch(head + "="):
+        return "prefix" if head[0] == "p" else "suffix"
     return None
 
 
 # A token type's contribution is a list of (slot, id) pairs: slot k is the k-th entry of
-# FeatureSpec.offsets() (0 = the token itself). Encoders append pairs to two flat lists and return how
-# many they appended; _RowBuilder lays them out per slot with numpy for all new types of a batch.
-Pairs = tuple[list[int], list[int]]
+# FeatureSpec.offsets() (0 = the token itself). Each pair travels as one int, slot << 32 | id, so that
+# encoders can append them with C-level list operations; _RowBuilder unpacks and lays them out per
+# slot with numpy for all new types of a batch.
+_SLOT_SHIFT = 32
+Pairs = tuple[int, ...]
+
+
+def _pair(slot: int, number: int) -> int:
+    return (slot << _SLOT_SHIFT) | number
 
 
 class _VocabularyEncoder:
@@ -467,20 +471,24 @@ class _VocabularyEncoder:
         self.index = self._index(feature_id)
 
     def _index(self, feature_id: dict[str, int]) -> dict[str, Pairs]:
-        slot_of = {offset: slot for slot, offset in enumerate(self.spec.offsets())}
+        slot_of = {_offset_prefix(offset): slot for slot, offset in enumerate(self.spec.offsets())}
         groups_at = self.spec.groups_at()
-        index: dict[str, Pairs] = {}
+        group_of_head: dict[str, str | None] = {}
+        index: dict[str, list[int]] = {}
         for name, number in feature_id.items():
-            labelled = _OFFSET_LABEL.match(name)
-            offset = int(labelled.group(1)) if labelled else 0
-            unlabeled = name[labelled.end():] if labelled else name
-            slot = slot_of.get(offset)
-            if slot is None or _group_of(unlabeled) not in groups_at[slot]:
+            if name[0] in "+-":     # only window features start with a sign ("-1|lower=...")
+                label, _, unlabeled = name.partition("|")
+                slot = slot_of.get(label + "|")
+            else:
+                unlabeled, slot = name, 0
+            head = unlabeled.partition("=")[0]
+            group = group_of_head.get(head, "")
+            if group == "":
+                group = group_of_head[head] = _group_of(head)
+            if slot is None or group not in groups_at[slot]:
                 continue   # a feature this spec never produces (e.g. a boundary marker or "bias")
-            slots, ids = index.setdefault(unlabeled, ([], []))
-            slots.append(slot)
-            ids.append(number)
-        return index
+            index.setdefault(unlabeled, []).append(_pair(slot, number))
+        return {name: tuple(pairs) for name, pairs in index.items()}
 
     def shape_pairs(self, shape: str, kind: str) -> Pairs:
         key = (shape, kind)
@@ -498,18 +506,13 @@ class _VocabularyEncoder:
         if use["length"]:
             names.append(_length_feature(len(shape), spec.length_bounds))
         names += ["flag=" + name for name, holds in self.shape_flags if holds(shape)]
-        slots: list[int] = []
-        ids: list[int] = []
-        for found in map(self.index.get, names):
-            if found is not None:
-                slots += found[0]
-                ids += found[1]
+        pairs = tuple(chain.from_iterable(filter(None, map(self.index.get, names))))
         if len(self.shape_cache) >= self.cache_size:
             self.shape_cache.clear()
-        self.shape_cache[key] = (slots, ids)
-        return slots, ids
+        self.shape_cache[key] = pairs
+        return pairs
 
-    def append_pairs(self, text: str, kind: str, raw_slots: list[int], raw_ids: list[int]) -> int:
+    def append_pairs(self, text: str, kind: str, raw: list[int]) -> int:
         """Append the known (slot, id) pairs of one token type; returns how many."""
         lower = text.lower()
         size = len(lower)
@@ -523,15 +526,10 @@ class _VocabularyEncoder:
         if self.use["wordlists"]:
             names += ["list=" + name for name, words in spec.wordlists if lower in words]
         names += ["flag=" + name for name, holds in self.text_flags if holds(text)]
-        before = len(raw_ids)
-        for found in map(self.index.get, names):
-            if found is not None:
-                raw_slots += found[0]
-                raw_ids += found[1]
-        slots, ids = self.shape_pairs(text.translate(_SHAPE_TABLE), kind)
-        raw_slots += slots
-        raw_ids += ids
-        return len(raw_ids) - before
+        before = len(raw)
+        raw += chain.from_iterable(filter(None, map(self.index.get, names)))   # known values only
+        raw += self.shape_pairs(text.translate(_SHAPE_TABLE), kind)
+        return len(raw) - before
 
 
 class _CountingEncoder:
@@ -541,13 +539,12 @@ class _CountingEncoder:
         self.spec = spec
         self.provisional = provisional
 
-    def append_pairs(self, text: str, kind: str, raw_slots: list[int], raw_ids: list[int]) -> int:
+    def append_pairs(self, text: str, kind: str, raw: list[int]) -> int:
         provisional = self.provisional
-        before = len(raw_ids)
+        before = len(raw)
         for slot, strings in enumerate(self.spec.type_strings(text, kind)):
-            raw_ids += [provisional.setdefault(name, len(provisional)) for name in strings]
-            raw_slots += [slot] * len(strings)
-        return len(raw_ids) - before
+            raw += [_pair(slot, provisional.setdefault(name, len(provisional))) for name in strings]
+        return len(raw) - before
 
 
 def _token_types(sentences: Sequence[tuple[list[str], list[str]]], n_tokens: int):
@@ -607,14 +604,15 @@ class _RowBuilder:
 
     def encode_new(self, keys: list[tuple[str, str]]) -> list[np.ndarray]:
         """Cache entries for new types, built together: one array, then one slice (view) per type."""
-        raw_slots: list[int] = []
-        raw_ids: list[int] = []
+        raw: list[int] = []
         append_pairs = self.encoder.append_pairs
-        pair_counts = [append_pairs(text, kind, raw_slots, raw_ids) for text, kind in keys]
+        pair_counts = [append_pairs(text, kind, raw) for text, kind in keys]
         k, n_types = len(self.offsets), len(keys)
-        per_type = np.array(pair_counts, dtype=_ID)                      # (M,)
+        pairs = np.array(raw, dtype=np.int64)                               # (R,)
+        per_type = np.array(pair_counts, dtype=_ID)                         # (M,)
         type_of_pair = np.repeat(np.arange(n_types, dtype=_ID), per_type)
-        sort_key = type_of_pair * k + np.array(raw_slots, dtype=_ID)    # (R,)
+        sort_key = type_of_pair * k + (pairs >> _SLOT_SHIFT).astype(_ID)
+        ids = (pairs & ((1 << _SLOT_SHIFT) - 1)).astype(_ID)
         order = np.argsort(sort_key, kind="stable")       # pairs grouped by type, then by slot
         slot_counts = np.bincount(sort_key, minlength=n_types * k).reshape(n_types, k)
         entry_lengths = k + per_type
@@ -624,7 +622,7 @@ class _RowBuilder:
         out[(entry_start[:, None] + np.arange(k)).ravel()] = slot_counts.ravel()
         pair_start = np.cumsum(per_type, dtype=_ID) - per_type
         rank = np.arange(len(order), dtype=_ID) - pair_start[type_of_pair]   # type_of_pair is sorted
-        out[entry_start[type_of_pair] + k + rank] = np.array(raw_ids, dtype=_ID)[order]
+        out[entry_start[type_of_pair] + k + rank] = ids[order]
         return [out[a:b] for a, b in zip(entry_start.tolist(), entry_end.tolist())]
 
     def encode_type(self, key: tuple[str, str]) -> np.ndarray:

@@ -485,3 +485,19 @@ def test_unreadable_or_broken_toml_is_a_config_error(tmp_path):
 def test_bad_min_count():
     with pytest.raises(ConfigError, match="min_count"):
         FeatureExtractor(FeatureSpec()).fit([], min_count=0)
+
+
+def test_vocabulary_entries_the_spec_never_produces_never_fire():
+    # A vocabulary from elsewhere may hold strings this spec cannot produce: an offset it has no
+    # window for, a group not used at that offset, or free text. They must stay empty columns.
+    cfg = {"token": {"groups": ["lower"]}, "window": [{"offset": -1, "groups": ["lower"]}]}
+    vocabulary = ["+2|lower=b", "-1|p1=a", "p1=a", "junk", "lower=a", "-1|lower=a", "shape=x"]
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg), vocabulary)
+    matrix, _ = extractor.transform([(["a", "a", "b"], ["word"] * 3)])
+    rows = decoded_rows(matrix, vocabulary)
+    # expected from the plain reference, restricted to the vocabulary
+    cfg_full = {"token": {**FULL_SPEC["token"], "groups": ["lower"]}, "position": FULL_SPEC["position"],
+                "window": cfg["window"], "wordlists": {}}
+    expected = [sorted(set(r) & set(vocabulary)) for r in ref_features(["a", "a", "b"], ["word"] * 3,
+                                                                        cfg_full)]
+    assert rows == expected == [["lower=a"], ["-1|lower=a", "lower=a"], ["-1|lower=a"]]
