@@ -334,3 +334,42 @@ def test_cli_reports_bad_progress_file_in_one_line(tmp_path, model_path):
                              "--output", str(out)], cwd=REPO, capture_output=True, text=True)
     assert result.returncode != 0
     assert result.stderr.count("\n") == 1 and "progress file is damaged" in result.stderr
+
+
+def test_progress_bar_on_a_terminal_only(tmp_path, model_path):
+    import pty
+
+    archive = big_archive(tmp_path / "in", 200)
+    primary, secondary = pty.openpty()  # stderr is a terminal (POSIX pseudo-terminal)
+    def command(output: str) -> list[str]:
+        return [sys.executable, "-m", "streamtag.cli", "replay", str(archive), "--model", model_path,
+                "--output", str(tmp_path / output), "--workers", "1", "--chunk-lines", "50"]
+
+    process = subprocess.Popen(command("tty.jsonl"), cwd=REPO, stderr=secondary, stdout=subprocess.DEVNULL)
+    os.close(secondary)
+    seen = b""
+    while True:
+        try:
+            data = os.read(primary, 4096)
+        except OSError:  # EIO once the process has closed the terminal
+            break
+        if not data:
+            break
+        seen += data
+    os.close(primary)
+    assert process.wait(timeout=60) == 0
+    assert b"lines/s" in seen and b"ETA" in seen and b"100.0%" in seen
+    # Not a terminal: no bar, only the summary line.
+    piped = subprocess.run(command("pipe.jsonl"), cwd=REPO, capture_output=True, text=True)
+    assert "ETA" not in piped.stderr and piped.stderr.startswith("replayed 200 lines")
+
+
+def test_progress_bar_line_format():
+    import io
+
+    stream = io.StringIO()
+    bar = replay.ProgressBar(stream, total_bytes=1000, start_bytes=0)
+    bar.began -= 10.0  # as if 10 s had passed: 250 bytes in 10 s leaves 750 bytes, i.e. 30 s
+    bar.update(250, 5000, force=True)
+    line = stream.getvalue()
+    assert " 25.0%" in line and "5,000 lines" in line and "ETA 00:30" in line

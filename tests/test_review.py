@@ -233,3 +233,17 @@ def test_markup_with_brackets_in_the_line():
     assert [(text[s:e], label) for s, e, label in spans] == [("marigold.fenn", "account"), ("vault-02", "host")]
     with pytest.raises(ValueError, match="differs"):
         review.parse_markup("sshd[311]: accepted key for [marigold.fen|account]n on vault-02x", text, {"account"})
+
+
+def test_labels_come_from_the_model_when_not_given(tmp_path):
+    from daemon_support import build_tiny_model  # a model with the types account, host, netaddr
+
+    model = tmp_path / "tiny.stm"
+    build_tiny_model(model)
+    queue, out = write_queue(tmp_path / "queue.jsonl", [QUEUE[3]]), tmp_path / "reviewed.jsonl"
+    result = subprocess.run([sys.executable, "-m", "streamtag.cli", "review", str(queue), "--out", str(out),
+                             "--model", str(model)], input="e\n= 1 person\n= 1 netaddr\nok\n", cwd=REPO,
+                            capture_output=True, text=True, timeout=60)
+    assert result.returncode == 0, result.stderr
+    assert "unknown label 'person' (known: account, host, netaddr)" in result.stdout
+    assert orjson.loads(out.read_bytes())["spans"][0]["label"] == "netaddr"
