@@ -1,7 +1,9 @@
 """`streamtag compare OLD NEW`: what changed between two taggings of the same lines.
 
 OLD and NEW are output files of ``replay``, ``tag`` or the daemon (one record per line). Records are
-matched by (source, offset) when every record of both files has an offset, else by (source, line).
+matched by (source, offset) when every record of both files has an offset, else by (source, line);
+a position seen twice in one file (a log truncated in place starts again at 0) is matched by order of
+appearance.
 Two files that do not cover the same lines (lines only in one, or the same key with different
 text) are reported and refused unless ``--allow-mismatch``, which compares the lines they share.
 
@@ -135,11 +137,17 @@ def key_mode(old: list[LineRecord], new: list[LineRecord]) -> str:
 
 
 def _keyed(records: list[LineRecord], mode: str) -> tuple[dict, int]:
-    """{(source, offset or line): record} and the number of duplicate keys (the last record wins)."""
-    keyed = {}
+    """{(source, offset or line, occurrence): record} and the number of repeated (source, position).
+
+    A position can repeat in one file: a log truncated in place (copy-truncate) starts again at
+    offset 0. The n-th record at a position in OLD is matched with the n-th one in NEW.
+    """
+    keyed, seen = {}, Counter()
     for record in records:
-        keyed[(record.source, record.offset if mode == "offset" else record.line)] = record
-    return keyed, len(records) - len(keyed)
+        position = (record.source, record.offset if mode == "offset" else record.line)
+        keyed[position + (seen[position],)] = record
+        seen[position] += 1
+    return keyed, len(records) - len(seen)
 
 
 # -- comparing spans -----------------------------------------------------------------------------------
@@ -204,8 +212,8 @@ class Comparison:
     only_old: int = 0
     only_new: int = 0
     text_differs: int = 0
-    duplicates_old: int = 0
-    duplicates_new: int = 0
+    repeated_old: int = 0
+    repeated_new: int = 0
     to_review: int = 0  # not sent to review in OLD, sent in NEW
     from_review: int = 0  # sent in OLD, not in NEW
     per_label: dict[str, Counter] = field(default_factory=dict)
@@ -227,7 +235,7 @@ class Comparison:
             "lines_compared": self.lines_compared,
             "lines_changed": self.lines_changed,
             "mismatch": {"only_old": self.only_old, "only_new": self.only_new, "text_differs": self.text_differs,
-                         "duplicates_old": self.duplicates_old, "duplicates_new": self.duplicates_new},
+                         "repeated_old": self.repeated_old, "repeated_new": self.repeated_new},
             "review": {"now_sent": self.to_review, "no_longer_sent": self.from_review},
             "per_label": {name: {k: counts[k] for k in LABEL_COLUMNS} for name, counts in sorted(self.per_label.items())},
             "totals": self.totals(),
@@ -246,9 +254,9 @@ EXAMPLE_KINDS = ("added", "removed", "relabelled", "moved", "now sent to review"
 
 def compare(old: list[LineRecord], new: list[LineRecord], examples: int = 5) -> Comparison:
     mode = key_mode(old, new)
-    old_keyed, dup_old = _keyed(old, mode)
-    new_keyed, dup_new = _keyed(new, mode)
-    result = Comparison(key_mode=mode, duplicates_old=dup_old, duplicates_new=dup_new)
+    old_keyed, repeated_old = _keyed(old, mode)
+    new_keyed, repeated_new = _keyed(new, mode)
+    result = Comparison(key_mode=mode, repeated_old=repeated_old, repeated_new=repeated_new)
     result.models_old = {r.model for r in old if r.model}
     result.models_new = {r.model for r in new if r.model}
     result.examples = {kind: [] for kind in EXAMPLE_KINDS}
@@ -282,8 +290,8 @@ def compare(old: list[LineRecord], new: list[LineRecord], examples: int = 5) -> 
 
 
 def _sortable(key: tuple) -> tuple:
-    source, position = key
-    return (source or "", position)
+    source, position, occurrence = key
+    return (source or "", position, occurrence)
 
 
 def _count_line(result: Comparison, key, before: LineRecord, after: LineRecord, note) -> None:
@@ -340,8 +348,9 @@ def mark_up(text: str, spans: tuple[Span, ...] | list[Span]) -> str:
 
 
 def _where(key: tuple, mode: str) -> str:
-    source, position = key
-    return f"{source or '-'} {'offset' if mode == 'offset' else 'line'} {position}"
+    source, position, occurrence = key
+    again = f" (occurrence {occurrence + 1})" if occurrence else ""
+    return f"{source or '-'} {'offset' if mode == 'offset' else 'line'} {position}{again}"
 
 
 def format_summary(result: Comparison, old_path: str, new_path: str, with_examples: bool = True) -> str:
@@ -395,9 +404,9 @@ def _mismatch_lines(result: Comparison) -> list[str]:
     if result.mismatched:
         lines.append(f"MISMATCH: {result.only_old:,} lines only in OLD, {result.only_new:,} only in NEW, "
                      f"{result.text_differs:,} with different text")
-    if result.duplicates_old or result.duplicates_new:
-        lines.append(f"duplicate records (the last was used): {result.duplicates_old:,} in OLD, "
-                     f"{result.duplicates_new:,} in NEW")
+    if result.repeated_old or result.repeated_new:
+        lines.append(f"repeated positions (matched in order of appearance): {result.repeated_old:,} in OLD, "
+                     f"{result.repeated_new:,} in NEW")
     return lines
 
 

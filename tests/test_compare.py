@@ -137,8 +137,8 @@ def test_allow_mismatch_compares_the_shared_lines(tmp_path, capsys):
     assert compare.run(parse_args([str(old), str(new), "--allow-mismatch", "--json"])) == 0
     summary = orjson.loads(capsys.readouterr().out)
     assert summary["lines_compared"] == 1
-    assert summary["mismatch"] == {"only_old": 1, "only_new": 1, "text_differs": 1, "duplicates_old": 0,
-                                   "duplicates_new": 0}
+    assert summary["mismatch"] == {"only_old": 1, "only_new": 1, "text_differs": 1, "repeated_old": 0,
+                                   "repeated_new": 0}
 
 
 def test_bad_record_is_named_by_file_and_line(tmp_path):
@@ -208,3 +208,13 @@ def test_report_svg_is_well_formed_xml(tmp_path):
             if element.find("{http://www.w3.org/2000/svg}title") is not None]
     assert len(bars) == 3 * 5  # account, host and the hostile label; five kinds of change each
     assert (tmp_path / "report.html").stat().st_mode & 0o777 == 0o600
+
+
+def test_repeated_positions_are_matched_in_order(tmp_path):
+    # A log truncated in place starts again at offset 0: both generations keep their own records.
+    old = [record(0, "first generation", []), record(0, "second generation on vault-02", [])]
+    new = [record(0, "first generation", []), record(0, "second generation on vault-02", [(21, 29, "host")])]
+    result = compare.compare(compare.read_records(write_jsonl(tmp_path / "a", old)),
+                             compare.read_records(write_jsonl(tmp_path / "b", new)))
+    assert not result.mismatched and result.lines_compared == 2
+    assert result.repeated_old == 1 and result.per_label["host"]["added"] == 1
