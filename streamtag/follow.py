@@ -1,7 +1,9 @@
 """Find input files, know them by identity, and hand out their new complete lines.
 
 A followed file is known by its identity, not its name: the device and inode numbers of the open file
-plus its *head* (the first bytes of it that we have seen, at most ``HEAD_BYTES``). The file stays open
+plus its *head*: the first bytes of it that have been read so far, at most ``HEAD_BYTES``, grown as
+reading goes on and compared with the file on every poll and before every chunk read. The state keeps
+only a hash of the head and its length (the bytes may hold personal data). The file stays open
 while it is followed, so a file renamed away by log rotation keeps being read through the same
 descriptor; lines appended to it after the rename are not lost.
 
@@ -29,8 +31,10 @@ Rules (see ``Follower`` for details):
   its own). A line longer than ``max_line_bytes`` is cut to that length and flagged ``"truncated"``;
   the rest is skipped by scanning for the newline in chunks, never holding more of the line.
 
-Only ``poll()`` looks for files and checks them; ``read()`` only reads from open descriptors. Neither
-raises for a problem with one file: the problem is reported through ``on_warning`` and retried.
+Only ``poll()`` looks for files; ``read()`` only reads from open descriptors, re-checking size and head
+before it joins newly read bytes to a held partial line (a truncation between poll and read must not
+glue two generations together). Neither raises for a problem with one file: the problem is reported
+through ``on_warning`` (once per path until it is fixed) and retried on later polls.
 """
 
 from __future__ import annotations

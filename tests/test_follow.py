@@ -855,7 +855,7 @@ class FollowerMachine(RuleBasedStateMachine):
 
 FollowerMachine.TestCase.settings = settings(
     # Moderate by default to keep the suite quick; STREAMTAG_STATEFUL_EXAMPLES=5000 for a deep run.
-    max_examples=int(os.environ.get("STREAMTAG_STATEFUL_EXAMPLES", "100")),
+    max_examples=int(os.environ.get("STREAMTAG_STATEFUL_EXAMPLES", "150")),
     stateful_step_count=40,
     deadline=None,
     suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much],
