@@ -455,6 +455,16 @@ def snapshot_roundtrip(follower: Follower) -> dict:
     return orjson.loads(orjson.dumps(follower.snapshot()))
 
 
+def read_then_stop(log, content: bytes) -> tuple[list[RawLine], dict]:
+    """Write ``content``, read all of it, take the snapshot and stop: (lines read, saved state)."""
+    log.write_bytes(content)
+    follower = make_follower([log])
+    lines = read_all(follower)
+    saved = snapshot_roundtrip(follower)
+    follower.close()
+    return lines, saved
+
+
 def test_resume_continues_after_the_last_line_read(tmp_path):
     log = tmp_path / "app.log"
     content = b"".join(b"entry %d\n" % i for i in range(10))
@@ -474,11 +484,7 @@ def test_resume_continues_after_the_last_line_read(tmp_path):
 
 def test_resume_finds_a_file_rotated_while_stopped(tmp_path):
     log = tmp_path / "app.log"
-    log.write_bytes(b"a1\na2\n")
-    follower = make_follower([log])
-    first = read_all(follower)
-    saved = snapshot_roundtrip(follower)
-    follower.close()
+    first, saved = read_then_stop(log, b"a1\na2\n")
     append(log, b"a3\n")
     os.rename(log, tmp_path / "app.log.1")  # rotated while streamtag was stopped
     append(tmp_path / "app.log.1", b"a4\n")
@@ -493,11 +499,7 @@ def test_resume_finds_a_file_rotated_while_stopped(tmp_path):
 
 def test_resume_after_truncation_while_stopped_reads_from_zero(tmp_path):
     log = tmp_path / "app.log"
-    log.write_bytes(b"long first line\nsecond line\n")
-    follower = make_follower([log])
-    read_all(follower)
-    saved = snapshot_roundtrip(follower)
-    follower.close()
+    _, saved = read_then_stop(log, b"long first line\nsecond line\n")
     with open(log, "r+b") as handle:
         handle.truncate(0)
         handle.write(b"x\n")
@@ -509,11 +511,7 @@ def test_resume_after_truncation_while_stopped_reads_from_zero(tmp_path):
 
 def test_resume_with_same_inode_but_other_first_bytes_reads_from_zero(tmp_path):
     log = tmp_path / "app.log"
-    log.write_bytes(b"original 1\noriginal 2\n")
-    follower = make_follower([log])
-    read_all(follower)
-    saved = snapshot_roundtrip(follower)
-    follower.close()
+    _, saved = read_then_stop(log, b"original 1\noriginal 2\n")
     replacement = b"replaced 1\nreplaced 2\nreplaced 3\n"  # same inode, longer, other head
     with open(log, "r+b") as handle:
         handle.truncate(0)
@@ -524,11 +522,7 @@ def test_resume_with_same_inode_but_other_first_bytes_reads_from_zero(tmp_path):
 
 def test_resume_drops_a_file_that_is_gone_with_a_warning(tmp_path):
     log = tmp_path / "app.log"
-    log.write_bytes(b"a\n")
-    follower = make_follower([log])
-    read_all(follower)
-    saved = snapshot_roundtrip(follower)
-    follower.close()
+    _, saved = read_then_stop(log, b"a\n")
     log.unlink()
     warnings = []
     resumed = make_follower([log], saved=saved, warnings=warnings)
