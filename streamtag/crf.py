@@ -27,6 +27,7 @@ _TINY = 1e-290
 # exp() of more than this overflows float64 (log(max float) is about 709.8).
 _EXP_LIMIT = 700.0
 _TRANSPOSE_BLOCK = 512
+_PAIR_BLOCK = 256
 
 
 class ForwardBackward(NamedTuple):
@@ -550,6 +551,24 @@ def span_log_prob(fb: ForwardBackward, E, lengths, trans, end, seq, first, stop,
 # Training objective
 
 
+def _sum_of_outer_products(left: np.ndarray, right: np.ndarray) -> np.ndarray:
+    """sum_p left[:, p] (x) right[:, p] = left @ right.T for (L, P) inputs, as (L, L).
+
+    Done as a batch of products over fixed blocks of _PAIR_BLOCK columns, summed in order: one
+    product with a long inner dimension is split across BLAS threads, which changes the summation
+    order with the thread count; small blocks run on one thread, so the bits do not depend on it.
+    """
+    n_labels, n_pairs = left.shape
+    whole = n_pairs - n_pairs % _PAIR_BLOCK
+    total = left[:, whole:] @ right[:, whole:].T
+    if whole:
+        blocks = whole // _PAIR_BLOCK
+        left_blocks = left[:, :whole].reshape(n_labels, blocks, _PAIR_BLOCK).transpose(1, 0, 2)
+        right_blocks = right[:, :whole].reshape(n_labels, blocks, _PAIR_BLOCK).transpose(1, 2, 0)
+        total += np.matmul(left_blocks, right_blocks).sum(axis=0)
+    return total
+
+
 def _expected_pair_counts(packed: _PackedForwardBackward, pk: _Packing, trans: np.ndarray, weight: np.ndarray) -> np.ndarray:
     """sum over adjacent pairs of weight * P(y_t-1 = i, y_t = j | x) as (L, L); weight (N,) packed.
 
@@ -570,7 +589,7 @@ def _expected_pair_counts(packed: _PackedForwardBackward, pk: _Packing, trans: n
     exact = ~(exponent <= _EXP_LIMIT)  # also catches NaN from an impossible sequence (log Z = -inf)
     scale = pair_weight * np.exp(np.where(exact, 0.0, exponent))
     scale[exact] = 0.0
-    counts = ((factors.alpha * scale) @ factors.after.T) * matrix.left.T
+    counts = _sum_of_outer_products(factors.alpha * scale, factors.after) * matrix.left.T
     cols = np.flatnonzero(exact & np.isfinite(log_z))
     if cols.size:
         pair_alpha = packed.log_alpha[:, pk.predecessor_cols()[cols]]

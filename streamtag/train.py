@@ -7,7 +7,9 @@ Two trainers share one parameter layout:
 - An averaged perceptron (fast, rough): mini-batches decoded together with Viterbi.
 
 Forbidden BIO moves are not parameters at all; the model stores 0 there and the tagger masks them.
-Everything is ordered deterministically, so the same data, options and seed give bit-identical weights.
+Everything is ordered deterministically, so the same data, options and seed give bit-identical weights
+on the same machine with the same BLAS thread setting (OPENBLAS_NUM_THREADS): our own sums do not
+depend on it, but the dot products inside scipy's L-BFGS-B do.
 """
 
 from __future__ import annotations

@@ -11,6 +11,7 @@ something to learn. Also times the CRF inference functions on the same shapes.
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import sys
 import time
@@ -131,9 +132,14 @@ def main() -> int:
     params, info = train.fit_arrays(X, gold, lengths, len(labels), allowed_trans, allowed_start, options)
     seconds, cpu = time.perf_counter() - began, time.process_time() - cpu_began
     predicted = train.decode(params, X, lengths, allowed_trans, allowed_start)
-    print(f"training ({args.method}, l1={args.l1}, l2={args.l2}): {info['iterations']} iterations, "
-          f"{evaluations} objective evaluations, {seconds:.1f} s wall, {cpu:.1f} s CPU, "
-          f"{seconds / max(evaluations, 1):.2f} s per evaluation")
+    if args.method == "perceptron":
+        print(f"training (perceptron): {info['iterations']} epochs, {seconds:.1f} s wall, {cpu:.1f} s CPU, "
+              f"{cpu / info['iterations']:.2f} s CPU per epoch")
+    else:
+        print(f"training (lbfgs, l1={args.l1}, l2={args.l2}): {info['iterations']} iterations, "
+              f"{evaluations} objective evaluations, {seconds:.1f} s wall, {cpu:.1f} s CPU, "
+              f"{cpu / max(evaluations, 1):.2f} s CPU per evaluation")
+    print(f"  load average now {' '.join(f'{x:.1f}' for x in os.getloadavg())} (wall times stretch when it exceeds the cores)")
     print(f"  final objective {info['loss']:.2f}, train token accuracy {np.mean(predicted == gold):.4f}, "
           f"zero emission weights {np.mean(params['emission'] == 0):.1%}")
     print(f"peak RSS {peak_rss_mb():.0f} MB")
