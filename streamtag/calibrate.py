@@ -3,7 +3,8 @@
 The dev set is tagged with the model. For each line we know its confidence (the tagger's line
 confidence), its predicted and gold character spans, and so whether it is fully correct. Then:
 
-- threshold table: for each threshold t, lines with confidence < t go to review (the daemon's rule).
+- threshold table (an even grid plus the thresholds sending 1%, 2%, 5% ... of lines): for each
+  threshold t, lines with confidence < t go to review (the daemon's rule).
   Columns: share of lines sent; span precision/recall/F1 on the lines NOT sent; errors that slip
   through, i.e. on the lines not sent, wrong predicted spans (false positives) and missed gold spans
   (false negatives), and lines with any error; the slip rate = those lines / all lines.
@@ -158,6 +159,17 @@ def candidate_thresholds(line_conf: np.ndarray) -> np.ndarray:
     return np.unique(np.concatenate([[0.0, 1.0], line_conf]))
 
 
+SHARE_ROWS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.5)
+
+
+def table_thresholds(outcome: Outcome, step: float) -> np.ndarray:
+    """An even grid, plus the thresholds that send 1%, 2%, 5% ... of the lines: a model whose
+    confidences crowd near 1.0 would otherwise show its whole range in the last row or two."""
+    grid = np.round(np.arange(0.0, 1.0 + step / 2, step), 10)
+    by_share = [suggest_for_share(outcome, share) for share in SHARE_ROWS] if outcome.line_conf.size else []
+    return np.unique(np.concatenate([grid, by_share]))
+
+
 def suggest_for_share(outcome: Outcome, target_share: float) -> float:
     """Largest threshold in [0, 1] that sends at most ``target_share`` of the lines to review."""
     candidates = candidate_thresholds(outcome.line_conf)
@@ -185,7 +197,7 @@ def _bins_dicts(table: list[CalibrationBin]) -> list[dict]:
 
 def calibration_report(outcome: Outcome, step: float, bins: int, target_share: float | None,
                        target_error: float | None) -> dict:
-    grid = np.round(np.arange(0.0, 1.0 + step / 2, step), 10)
+    grid = table_thresholds(outcome, step)
     rows = threshold_rows(outcome, grid)
     report = {
         "lines": int(outcome.line_conf.size),
@@ -214,7 +226,7 @@ def calibration_report(outcome: Outcome, step: float, bins: int, target_share: f
 def format_report(report: dict) -> str:
     out = [f"{report['lines']:,} lines ({report['lines_correct']:,} fully correct), "
            f"{report['spans_predicted']:,} predicted spans, {report['spans_gold']:,} gold spans", "",
-           "threshold  sent   P(kept)  R(kept)  F1(kept)  wrong  missed  error lines  slip rate"]
+           "          threshold  sent    P(kept)  R(kept)  F1(kept)  wrong  missed  error lines  slip rate"]
     for row in report["thresholds"]:
         out.append(_threshold_line(row))
     for name in ("line", "span"):
@@ -232,13 +244,14 @@ def format_report(report: dict) -> str:
         if suggestion["threshold"] is None:
             out.append(f"no threshold gives {goal}: lines with errors at confidence 1.0 always pass")
         else:
-            out.append(f"suggested threshold {suggestion['threshold']:.6f} for {goal}:")
+            out.append(f"suggested threshold {suggestion['threshold']!r} for {goal}:")
             out.append(_threshold_line(suggestion["at_threshold"]))
     return "\n".join(out)
 
 
 def _threshold_line(row: dict) -> str:
-    return (f"{row['threshold']:9.4f}  {row['share_sent']:5.1%}  {row['precision']:7.3f}  {row['recall']:7.3f}  "
+    # repr: the shortest text that reads back as the same float, so a printed threshold can be used as is.
+    return (f"{row['threshold']!r:>19}  {row['share_sent']:5.1%}  {row['precision']:7.3f}  {row['recall']:7.3f}  "
             f"{row['f1']:8.3f}  {row['wrong_spans']:5d}  {row['missed_spans']:6d}  {row['error_lines']:11d}  "
             f"{row['slip_rate']:9.2%}")
 
@@ -279,7 +292,7 @@ def plot_svg(report: dict) -> str:
     parts += _panel_axes(left, top, size, f"reliability (line ECE {report['line_ece']:.3f}, "
                                              f"span ECE {report['span_ece']:.3f})", "confidence", "accuracy")
     parts.append(_polyline(left, top, size, [0, 1], [0, 1], "#999", "4 4"))
-    for name, colour, shift in (("line", "#3b7dd8", 0.0), ("span", "#e07b00", 0.5)):
+    for name, colour, shift in (("line", "#3b7dd8", 0.0), ("span", "#e07b00", 1.0)):  # side by side in a bin
         for b in report[f"{name}_reliability"]:
             if not b["count"]:
                 continue
@@ -302,8 +315,10 @@ def plot_svg(report: dict) -> str:
         x = right_x + suggestion["threshold"] * size
         parts.append(f'<line x1="{x:.1f}" y1="{top}" x2="{x:.1f}" y2="{top + size}" stroke="#222" '
                      f'stroke-dasharray="2 3"/>')
-        parts.append(f'<text x="{x + 3:.1f}" y="{top + 12}" font-size="10">suggested '
-                     f'{suggestion["threshold"]:.3f}</text>')
+        # The label goes on the side of the line with more room, so it stays inside the picture.
+        anchor, dx = ("end", -3) if suggestion["threshold"] > 0.5 else ("start", 3)
+        parts.append(f'<text x="{x + dx:.1f}" y="{top + 12}" font-size="10" text-anchor="{anchor}">suggested '
+                     f'{suggestion["threshold"]:.6g}</text>')
     legend = [("#3b7dd8", "line accuracy per bin"), ("#e07b00", "span accuracy per bin")]
     legend += [(colour, text) for _, colour, text in curves]
     for i, (colour, text) in enumerate(legend):
