@@ -357,6 +357,7 @@ class Daemon:
         self.stats_path = os.path.join(config.state_dir, STATS_FILE)
         self.model_path = str(config.model_path) if config.model_path else str(default_model_path())
         self.checkpoints = 0  # number of checkpoints saved (tests and stats)
+        self.saved_files: dict | None = None  # follower snapshot in the last saved checkpoint
 
     # signal-safe: only set flags
     def request_stop(self, *_: Any) -> None:
@@ -456,7 +457,6 @@ class Daemon:
         next_model_check = now + MODEL_CHECK_SECONDS
         self.follower.poll()
         self._checkpoint()  # positions of newly found files count from now on (start_at = "end")
-        last_saved = self.follower.snapshot()
         lines: list = []
         while True:
             if self.stop_requested:
@@ -493,10 +493,9 @@ class Daemon:
                 exit_code = self._write_with_retry(pending)
                 if exit_code:
                     return exit_code
-                last_saved = None
                 pending = _Pending()
             elif not len(pending) and not lines:
-                last_saved = self._checkpoint_if_moved(last_saved)
+                self._checkpoint_if_moved()
 
     def _finish(self, pending: _Pending) -> int:
         """Stop requested: write the batch in hand, checkpoint, last stats line."""
@@ -527,12 +526,10 @@ class Daemon:
                     return True
         return False
 
-    def _checkpoint_if_moved(self, last_saved):
+    def _checkpoint_if_moved(self) -> None:
         """Idle: save positions that moved without lines (new file at its end, rotation, truncation)."""
-        snapshot = self.follower.snapshot()
-        if snapshot != last_saved:
+        if self.follower.snapshot() != self.saved_files:
             self._save_checkpoint_with_retry()
-        return snapshot
 
     # -- one batch ------------------------------------------------------------------------------
 
@@ -579,13 +576,15 @@ class Daemon:
                 delay = min(delay * 2, BACKOFF_CAP_SECONDS)
 
     def _checkpoint(self) -> None:
+        files = self.follower.snapshot()
         state = State(
-            files=self.follower.snapshot(),
+            files=files,
             output_bytes=self.writer.output.length,
             review_bytes=self.writer.review.length,
             model_id=self.tagger.model_id,
         )
         save_state(self.state_path, state, mode=self.config.file_mode)
+        self.saved_files = files
         self.checkpoints += 1
 
     def _sleep(self, seconds: float) -> None:

@@ -378,6 +378,57 @@ def test_enospc_holds_the_batch_and_the_checkpoint(tmp_path, model_paths):
     assert load_state(state_path).output_bytes == output.stat().st_size
 
 
+def test_checkpoint_fault_pauses_reading_and_loses_nothing(tmp_path, model_paths, monkeypatch):
+    import streamtag.daemon as daemon_module
+
+    source = tmp_path / "app.log"
+    append_lines(source, numbered("K", 0, 100))
+    config = write_config(tmp_path, [str(source)], model_paths[0][0])
+    state_full = threading.Event()
+    real_save = daemon_module.save_state
+
+    def save_state(path, state, mode=0o600):
+        if state_full.is_set():
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))  # write(2): ENOSPC
+        return real_save(path, state, mode=mode)
+
+    monkeypatch.setattr(daemon_module, "save_state", save_state)
+    daemon = InProcessDaemon(config).start()
+    output = tmp_path / "out" / "tagged.jsonl"
+    wait_until(lambda: count_lines(output) >= 100, what="first records")
+    state_full.set()
+    append_lines(source, numbered("K", 100, 100))
+    wait_until(lambda: daemon.log_text().count("checkpoint failed (ENOSPC") >= 2, what="checkpoint retries")
+    held = count_lines(output)
+    append_lines(source, numbered("K", 200, 100))
+    time.sleep(0.5)
+    assert count_lines(output) == held  # until the checkpoint lands, nothing more is read
+    state_full.clear()
+    wait_until(lambda: count_lines(output) >= 300, what="records after the fault")
+    assert daemon.stop() == 0
+    assert [line_id(r) for r in read_records(output)] == list(range(300))
+    assert load_state(str(tmp_path / "state" / "state.json")).output_bytes == output.stat().st_size
+
+
+def test_start_at_end_skips_old_lines_once(tmp_path, model_paths):
+    source = tmp_path / "app.log"
+    append_lines(source, numbered("E", 0, 50))
+    config = write_config(tmp_path, [str(source)], model_paths[0][0], inputs={"start_at": "end"})
+    output = tmp_path / "out" / "tagged.jsonl"
+    daemon = InProcessDaemon(config).start()
+    wait_until(lambda: (tmp_path / "state" / "state.json").exists(), what="first checkpoint")
+    append_lines(source, numbered("E", 50, 10))
+    wait_until(lambda: count_lines(output) >= 10, what="new lines")
+    assert daemon.stop() == 0
+    append_lines(source, numbered("E", 60, 10))  # written while stopped: must not be skipped
+    daemon = InProcessDaemon(config).start()
+    wait_until(lambda: count_lines(output) >= 20, what="lines written while stopped")
+    assert daemon.stop() == 0
+    records = read_records(output)
+    assert [line_id(r) for r in records] == list(range(50, 70))
+    assert [r["line"] for r in records] == list(range(51, 71))  # true line numbers in the file
+
+
 # -- bad input --------------------------------------------------------------------------------------
 
 
