@@ -11,7 +11,6 @@ from __future__ import annotations
 import hashlib
 import io
 import os
-import tempfile
 import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -19,6 +18,7 @@ from pathlib import Path
 import numpy as np
 import orjson
 
+from streamtag.checkpoint import write_file_atomically
 from streamtag.errors import ModelError
 
 FORMAT_NAME = "streamtag-model"
@@ -136,35 +136,9 @@ def model_to_bytes(model: Model) -> tuple[bytes, str]:
 def save_model(model: Model, path: str | os.PathLike, mode: int = 0o644) -> str:
     """Write the model atomically (temp file, fsync, rename, fsync dir). Returns the model id."""
     data, model_id = model_to_bytes(model)
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.chmod(tmp_name, mode)
-        os.replace(tmp_name, path)
-    except BaseException:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise
-    _fsync_dir(path.parent)
+    write_file_atomically(path, data, mode)
     model.model_id = model_id
     return model_id
-
-
-def _fsync_dir(directory: Path) -> None:
-    try:
-        fd = os.open(directory, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
 
 
 def load_model(path: str | os.PathLike | None = None) -> Model:
