@@ -380,7 +380,6 @@ class Daemon:
     # -- start and stop ------------------------------------------------------------------------
 
     def _run(self) -> int:
-
         config = self.config
         if not config.inputs:
             raise ConfigError(f"{config.config_path or 'command line'}: inputs.paths: no input given (nothing to watch)")
@@ -404,6 +403,8 @@ class Daemon:
             saved=state.files if state is not None else None,
             clock=self.clock,
             on_warning=self.log,
+            # A directory or glob input may cover our own files: tagging them would feed back.
+            exclude=[config.output_path, config.review_path, self.state_path, self.stats_path],
         )
         watcher = self._start_watcher()
         previous_handlers = self._install_signal_handlers()
@@ -451,44 +452,26 @@ class Daemon:
         config = self.config
         now = self.clock()
         self.stats = Stats(started=now, interval_start=now)
-        pending = _Pending()
+        self.last_poll = -float("inf")
+        self.next_model_check = now + MODEL_CHECK_SECONDS
         max_wait = config.batch_max_wait_ms / 1000.0
-        last_poll = -float("inf")
-        next_model_check = now + MODEL_CHECK_SECONDS
+        pending = _Pending()
         self.follower.poll()
-        self._checkpoint()  # positions of newly found files count from now on (start_at = "end")
+        # Positions of the files found now count from here on (start_at = "end" skips are kept).
+        if not self._save_checkpoint_with_retry():
+            return 1
         lines: list = []
         while True:
             if self.stop_requested:
                 return self._finish(pending)
-            now = self.clock()
-            # Lines are tagged when their batch is written, so a swap here is between batches.
-            if self.reload_requested or now >= next_model_check:
-                self._maybe_swap_model()
-                next_model_check = now + MODEL_CHECK_SECONDS
-            if now - self.stats.interval_start >= config.stats_interval_seconds:
-                self._emit_stats()
-            # Wait (only when the last read found nothing): for change hints when idle, for more
-            # lines while a partial batch lingers.
-            hinted = False
-            if not lines:
-                if len(pending):
-                    timeout = pending.started + max_wait - now
-                else:
-                    timeout = last_poll + config.poll_interval_seconds - now
-                hinted = self._wait_for_hint(timeout) if timeout > 0 else False
-            now = self.clock()
-            if hinted or len(pending) or now - last_poll >= config.poll_interval_seconds:
-                self.follower.poll()
-                last_poll = now
-            room = config.batch_max_lines - len(pending)
-            lines = self.follower.read(room) if room > 0 else []
-            if lines:
-                read_time = self.clock()
-                if not len(pending):
-                    pending.started = read_time
-                pending.lines.extend(lines)
-                pending.read_at.extend([read_time] * len(lines))
+            self._housekeeping()
+            if not lines:  # the last read found nothing: wait for a change (or the batch deadline)
+                deadline = pending.started + max_wait if len(pending) else self.last_poll + config.poll_interval_seconds
+                hinted = self._wait_for_hint(deadline - self.clock())
+                if hinted or len(pending) or self.clock() - self.last_poll >= config.poll_interval_seconds:
+                    self.follower.poll()
+                    self.last_poll = self.clock()
+            lines = self._read_into(pending)
             if len(pending) and (len(pending) >= config.batch_max_lines or self.clock() - pending.started >= max_wait):
                 exit_code = self._write_with_retry(pending)
                 if exit_code:
@@ -496,6 +479,28 @@ class Daemon:
                 pending = _Pending()
             elif not len(pending) and not lines:
                 self._checkpoint_if_moved()
+
+    def _housekeeping(self) -> None:
+        """Model file check (at most once a second, or on SIGHUP) and the stats line when due."""
+        now = self.clock()
+        # Lines are tagged when their batch is written, so a swap here is between batches.
+        if self.reload_requested or now >= self.next_model_check:
+            self._maybe_swap_model()
+            self.next_model_check = now + MODEL_CHECK_SECONDS
+        if now - self.stats.interval_start >= self.config.stats_interval_seconds:
+            self._emit_stats()
+
+    def _read_into(self, pending: _Pending) -> list:
+        """Read as many lines as the batch has room for; remember when they were read."""
+        room = self.config.batch_max_lines - len(pending)
+        lines = self.follower.read(room) if room > 0 else []
+        if lines:
+            read_time = self.clock()
+            if not len(pending):
+                pending.started = read_time
+            pending.lines.extend(lines)
+            pending.read_at.extend([read_time] * len(lines))
+        return lines
 
     def _finish(self, pending: _Pending) -> int:
         """Stop requested: write the batch in hand, checkpoint, last stats line."""
@@ -510,6 +515,8 @@ class Daemon:
 
     def _wait_for_hint(self, timeout: float) -> bool:
         """Sleep until a change hint, a signal flag or the timeout; drains the hint queue."""
+        if timeout <= 0:
+            return False
         deadline = self.clock() + timeout
         while not (self.stop_requested or self.reload_requested):
             remaining = deadline - self.clock()

@@ -429,6 +429,21 @@ def test_start_at_end_skips_old_lines_once(tmp_path, model_paths):
     assert [r["line"] for r in records] == list(range(51, 71))  # true line numbers in the file
 
 
+def test_own_files_inside_an_input_directory_are_not_tagged(tmp_path, model_paths):
+    logs = tmp_path / "logs"
+    logs.mkdir()
+    append_lines(logs / "app.log", numbered("O", 0, 20))
+    config = write_config(tmp_path, [str(logs)], model_paths[0][0],
+                          output={"path": str(logs / "tagged.jsonl"), "review_path": str(logs / "review.jsonl")},
+                          state={"directory": str(logs / "state")})
+    daemon = InProcessDaemon(config).start()
+    wait_until(lambda: count_lines(logs / "tagged.jsonl") >= 20, what="records")
+    time.sleep(1.0)  # a few more polls: a feedback loop would show as more records
+    assert daemon.stop() == 0
+    records = read_records(logs / "tagged.jsonl")
+    assert len(records) == 20 and {r["source"] for r in records} == {str(logs / "app.log")}
+
+
 # -- bad input --------------------------------------------------------------------------------------
 
 
