@@ -8,9 +8,11 @@ the neighbour is off the line) complete a row. A vocabulary maps feature strings
 features outside the vocabulary are ignored.
 
 Speed comes from caching: everything a token contributes depends only on its text and kind, so for each
-distinct (text, kind) the ids it adds at every offset are computed once and cached. A batch then needs
-one dict lookup per token (to find its type) and a handful of numpy operations to gather the cached ids
-into CSR rows.
+distinct (text, kind) the ids it adds at every offset are computed once and cached (bounded; the cache
+is emptied when full). A batch then needs one dict lookup per token (to find its type) and a fixed
+number of numpy operations to gather the cached ids into CSR rows. New types are the costly part; the
+vocabulary is indexed by feature value without offset label, so a new token costs one dict lookup per
+value (its lower form, each affix), and its shape-and-kind features are cached per distinct shape.
 """
 
 from __future__ import annotations
@@ -415,6 +417,9 @@ def _ragged_gather(source: np.ndarray, starts: np.ndarray, counts: np.ndarray) -
 
 
 _SHAPE_GROUPS = ("shape", "collapsed_shape", "kind", "length")
+# Types with longer texts are not cached: they are rare and seldom repeat, and caching them would let a
+# log full of long distinct tokens fill memory with cache_size of them.
+_MAX_CACHED_CHARS = 256
 _TEXT_GROUPS = ("lower", "prefix", "suffix", "wordlists")
 _AFFIX = re.compile(r"([ps])\d+=")
 
@@ -507,9 +512,10 @@ class _VocabularyEncoder:
             names.append(_length_feature(len(shape), spec.length_bounds))
         names += ["flag=" + name for name, holds in self.shape_flags if holds(shape)]
         pairs = tuple(chain.from_iterable(filter(None, map(self.index.get, names))))
-        if len(self.shape_cache) >= self.cache_size:
-            self.shape_cache.clear()
-        self.shape_cache[key] = pairs
+        if len(shape) <= _MAX_CACHED_CHARS:
+            if len(self.shape_cache) >= self.cache_size:
+                self.shape_cache.clear()
+            self.shape_cache[key] = pairs
         return pairs
 
     def append_pairs(self, keys: list[tuple[str, str]], raw: list[int]) -> list[int]:
@@ -643,10 +649,6 @@ class _RowBuilder:
         out[entry_start[type_of_pair] + k + rank] = ids[order]
         return [out[a:b] for a, b in zip(entry_start.tolist(), entry_end.tolist())]
 
-    def encode_type(self, key: tuple[str, str]) -> np.ndarray:
-        """Per-slot counts then ids for one (text, kind): (K + ids,) int32."""
-        return self.encode_new([key])[0]
-
     def entries_for(self, keys: list[tuple[str, str]]) -> list[np.ndarray]:
         """Cache entries of the batch's distinct types, in order. Loops over distinct types only."""
         cache = self.cache
@@ -659,17 +661,18 @@ class _RowBuilder:
             cache.clear()   # crude but O(1) amortised; the next batches refill what they use
         for n, key, entry in zip(missing, new_keys, self.encode_new(new_keys)):
             entries[n] = entry
-            if len(cache) < self.cache_size:
+            if len(cache) < self.cache_size and len(key[0]) <= _MAX_CACHED_CHARS:
                 cache[key] = entry
         return entries
 
-    def build(self, sentences: Sequence[tuple[list[str], list[str]]]):
+    def build(self, sentences: Sequence[tuple[list[str], list[str]]], first_number: int = 0):
         """-> indices (nnz,) int32, indptr (N+1,) int32, lengths (B,) int64 for the batch."""
         lengths = np.fromiter((len(texts) for texts, _ in sentences), dtype=np.int64,
                               count=len(sentences))
         for number, (texts, kinds) in enumerate(sentences):
             if len(texts) != len(kinds):
-                raise DataError(f"sentence {number}: {len(texts)} tokens but {len(kinds)} kinds")
+                raise DataError(f"sentence {first_number + number}: {len(texts)} tokens but "
+                                f"{len(kinds)} kinds")
         n_tokens = int(lengths.sum())
         if n_tokens == 0:
             return np.zeros(0, _ID), np.zeros(1, _ID), lengths
@@ -768,8 +771,10 @@ class FeatureExtractor:
         rows = _RowBuilder(self.spec, _CountingEncoder(self.spec, provisional), grow, self.cache_size)
         counts = np.zeros(0, dtype=np.int64)
         iterator = iter(sentences)
+        done = 0
         while chunk := list(islice(iterator, chunk_size)):
-            indices, _, _ = rows.build(chunk)
+            indices, _, _ = rows.build(chunk, first_number=done)
+            done += len(chunk)
             chunk_counts = np.bincount(indices, minlength=len(provisional))
             counts = np.pad(counts, (0, len(chunk_counts) - len(counts)))
             counts += chunk_counts
@@ -817,10 +822,5 @@ class FeatureExtractor:
         return rows
 
 
-def default_spec_path() -> Path:
-    """Location of the packaged default spec (may be inside a zip; use FeatureSpec.default to load)."""
-    return Path(str(resources.files("streamtag") / "defaults" / "features.toml"))
-
-
 __all__ = ["FeatureSpec", "FeatureExtractor", "WindowOffset", "GROUPS", "FLAGS", "word_shape",
-           "collapse_runs", "default_spec_path", "SPEC_VERSION"]
+           "collapse_runs", "SPEC_VERSION"]

@@ -501,3 +501,32 @@ def test_vocabulary_entries_the_spec_never_produces_never_fire():
     expected = [sorted(set(r) & set(vocabulary)) for r in ref_features(["a", "a", "b"], ["word"] * 3,
                                                                         cfg_full)]
     assert rows == expected == [["lower=a"], ["-1|lower=a", "lower=a"], ["-1|lower=a"]]
+
+
+def test_long_tokens_match_reference_and_are_not_cached():
+    # A log can hold long distinct tokens (base64 blobs); they must be featurised exactly like short
+    # ones but must not pile up in the cache.
+    blob = "Qm9ndXNEYXRh" * 40           # 480 characters, invented
+    texts, kinds = ["key", blob, "end"], ["word", "hex", "word"]
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    extractor.fit([(texts, kinds)])
+    rows = decoded_rows(extractor.transform([(texts, kinds)])[0], extractor.vocabulary)
+    assert rows == [sorted(r) for r in ref_features(texts, kinds, FULL_SPEC)]
+    assert all(len(text) < len(blob) for text, _ in extractor._rows.cache)
+
+
+def test_fit_reports_the_sentence_number_across_chunks():
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    sentences = [(["a"], ["word"])] * 5 + [(["a", "b"], ["word"])]
+    with pytest.raises(DataError, match="sentence 5:"):
+        extractor.fit(sentences, chunk_size=2)
+
+
+@SETTINGS
+@given(batches)
+def test_shipped_spec_matches_reference(batch):
+    cfg = FeatureSpec.default().to_dict()
+    extractor = FeatureExtractor(FeatureSpec.default())
+    vocabulary = extractor.fit(batch)
+    expected = [sorted(row) for texts, kinds in batch for row in ref_features(texts, kinds, cfg)]
+    assert decoded_rows(extractor.transform(batch)[0], vocabulary) == expected
