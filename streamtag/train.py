@@ -243,12 +243,14 @@ class _KeepBest:
         self.best_score: float | None = None
         self.best_params: dict[str, np.ndarray] | None = None
         self.best_iteration = 0
+        self.last_scored: int | None = None
 
     def score(self, params: dict[str, np.ndarray], iteration: int) -> float | None:
         if self.dev is None:
             return None
         X, gold, lengths, score_fn = self.dev
         predicted = decode(params, X, lengths, *self.allowed)
+        self.last_scored = iteration
         if score_fn is not None:
             value = float(score_fn(predicted))
         else:
@@ -285,7 +287,7 @@ def fit_arrays(X, gold, lengths, n_labels, allowed_trans, allowed_start, options
         theta, info = _fit_lbfgs(X, gold, lengths, layout, options, weights, theta0, keeper, progress, began)
     params = layout.params(theta)
     final_iteration = info["iterations"]
-    if keeper.dev is not None and keeper.best_iteration != final_iteration:
+    if keeper.dev is not None and keeper.last_scored != final_iteration:
         keeper.score(params, final_iteration)  # the final weights compete too
     if keeper.best_params is not None:
         params = keeper.best_params
