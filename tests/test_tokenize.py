@@ -713,3 +713,44 @@ def test_linear_time_on_mixed_adversarial_line():
     # All motifs interleaved: rules that fail late at many start positions would show here.
     ratio = _cost_ratio("".join(ADVERSARIAL_MOTIFS))
     assert ratio < LINEAR_RATIO_LIMIT, f"mixed: 100k chars cost {ratio:.1f}x 10k chars"
+
+
+# ------------------------------------------------------------------------------------------------
+# fast paths are an optimisation only
+# ------------------------------------------------------------------------------------------------
+
+
+def _tokens_without_fast_paths(line: str) -> list[tuple[int, int, str]]:
+    from streamtag.tokenize import _build_pattern
+
+    global _SLOW_PATTERN
+    if _SLOW_PATTERN is None:
+        _SLOW_PATTERN = _build_pattern(fast_paths=False)
+    pattern, kind_of_group = _SLOW_PATTERN
+    return [(m.start(), m.end(), kind_of_group[m.lastindex]) for m in pattern.finditer(line)]
+
+
+_SLOW_PATTERN = None
+# Pieces near the edges of the fast paths: units, e-mail and scheme continuations, double dashes,
+# a-f-only MAC/UUID shapes, a non-ASCII digit after 'V'.
+FAST_PATH_EDGES = [
+    "@", "+", "v", "V", "ms", "MB", "GiB", "%", ":/", "e3", "0", "--", "aa-bb-cc-dd-ee-ff", "deadbeef-",
+    "\u0dea", "\u0967", "12.", "+0000", "/s", "/\u00e9", "xn--", "_", "ab", "g",
+]
+
+
+def _tokens(line: str) -> list[tuple[int, int, str]]:
+    tokens = tokenize(line)
+    return list(zip(tokens.starts, tokens.ends, tokens.kinds))
+
+
+def test_fast_paths_change_nothing_on_sample_lines():
+    # The full rules alone are the reference; the fast paths must give the same tokens and kinds.
+    for line in SAMPLE.read_text(encoding="utf-8").splitlines():
+        assert _tokens(line) == _tokens_without_fast_paths(line), line
+
+
+@settings(max_examples=1000)
+@given(st.lists(st.sampled_from(LOG_FRAGMENTS + FAST_PATH_EDGES), max_size=30).map("".join))
+def test_fast_paths_change_nothing_on_log_like_text(line):
+    assert _tokens(line) == _tokens_without_fast_paths(line)
