@@ -133,8 +133,11 @@ def model_to_bytes(model: Model) -> tuple[bytes, str]:
     return buffer.getvalue(), model_id
 
 
-def save_model(model: Model, path: str | os.PathLike, mode: int = 0o644) -> str:
-    """Write the model atomically (temp file, fsync, rename, fsync dir). Returns the model id."""
+def save_model(model: Model, path: str | os.PathLike, mode: int = 0o600) -> str:
+    """Write the model atomically (temp file, fsync, rename, fsync dir). Returns the model id.
+
+    Private by default: the vocabulary holds words of the training lines (names, accounts).
+    """
     data, model_id = model_to_bytes(model)
     write_file_atomically(path, data, mode)
     model.model_id = model_id
