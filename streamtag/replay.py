@@ -112,13 +112,20 @@ def expand_archives(patterns: list[str], exclude: set[str]) -> list[Archive]:
     for pattern in patterns:
         for path in _paths_of(pattern):
             real = os.path.realpath(path)
-            if real in seen or real in exclude:
+            if real in seen or real in exclude or _is_temporary_of(real, exclude):
                 continue
             seen.add(real)
             archives.append(_describe_archive(os.path.abspath(path)))
     if not archives:
         raise DataError("no archive files to replay")
     return archives
+
+
+def _is_temporary_of(path: str, files: set[str]) -> bool:
+    """A temp file left by an atomic write of one of ``files`` (".NAME.xxxx.tmp" beside it)."""
+    folder, name = os.path.split(path)
+    return name.endswith(".tmp") and any(
+        os.path.dirname(f) == folder and name.startswith(f".{os.path.basename(f)}.") for f in files)
 
 
 def _paths_of(pattern: str) -> list[str]:

@@ -373,3 +373,14 @@ def test_progress_bar_line_format():
     bar.update(250, 5000, force=True)
     line = stream.getvalue()
     assert " 25.0%" in line and "5,000 lines" in line and "ETA 00:30" in line
+
+
+def test_own_output_files_in_a_replayed_folder_are_not_read(tmp_path, model_path):
+    folder = tmp_path / "logs"
+    folder.mkdir()
+    (folder / "app.log").write_bytes(b"user kestrel on vault-02\n")
+    out = folder / "tagged.jsonl"
+    (folder / ".tagged.jsonl.progress.x1y2.tmp").write_bytes(b"{}")  # left by an interrupted atomic write
+    replay.run(parse_args([str(folder), "--model", model_path, "--output", str(out), "--review",
+                           str(folder / "review.jsonl"), "--workers", "1", "--quiet"]))
+    assert [r["source"] for r in read_jsonl(out)] == [str(folder / "app.log")]
