@@ -465,6 +465,10 @@ class _VocabularyEncoder:
         self.spec = spec
         self.cache_size = cache_size
         self.shape_cache: dict[tuple[str, str], Pairs] = {}
+        # Affix features depend only on the first (last) max-length characters: timestamps, ports and
+        # ids share them far more often than whole texts, so they are cached by that key.
+        self.prefix_cache: dict[str, Pairs] = {}
+        self.suffix_cache: dict[str, Pairs] = {}
         used = set(chain.from_iterable(spec.groups_at()))
         self.text_flags = [(name, TEXT_FLAGS[name]) for name in spec.flags if name in TEXT_FLAGS] \
             if "flags" in used else []
@@ -528,6 +532,12 @@ class _VocabularyEncoder:
         index_get = self.index.get
         prefix_items = list(zip(spec.prefix_lengths, self.prefix_labels))
         suffix_items = [(-n, label) for n, label in zip(spec.suffix_lengths, self.suffix_labels)]
+        longest_prefix = max(spec.prefix_lengths) if prefix_items else 0
+        longest_suffix = max(spec.suffix_lengths) if suffix_items else 0
+        prefix_cache, suffix_cache = self.prefix_cache, self.suffix_cache
+        if len(prefix_cache) + len(suffix_cache) >= self.cache_size:
+            prefix_cache.clear()
+            suffix_cache.clear()
         lower_label = "lower=" if self.use["lower"] else None
         cut = spec.max_value_chars
         wordlists = spec.wordlists if self.use["wordlists"] else ()
@@ -536,16 +546,26 @@ class _VocabularyEncoder:
         counts = []
         for text, kind in keys:
             lower = text.lower()
-            size = len(lower)
-            names = [label + lower[:n] for n, label in prefix_items if n <= size]
-            names += [label + lower[n:] for n, label in suffix_items if -n <= size]
-            if lower_label is not None:
-                names.append(lower_label + lower[:cut])
+            before = len(raw)
+            if longest_prefix:
+                head = lower[:longest_prefix]
+                found = prefix_cache.get(head)
+                if found is None:
+                    found = prefix_cache[head] = tuple(chain.from_iterable(filter(None, map(
+                        index_get, [label + head[:n] for n, label in prefix_items if n <= len(head)]))))
+                raw += found
+            if longest_suffix:
+                tail = lower[-longest_suffix:]
+                found = suffix_cache.get(tail)
+                if found is None:
+                    found = suffix_cache[tail] = tuple(chain.from_iterable(filter(None, map(
+                        index_get, [label + tail[n:] for n, label in suffix_items if -n <= len(tail)]))))
+                raw += found
+            names = [lower_label + lower[:cut]] if lower_label is not None else []
             if wordlists:
                 names += ["list=" + name for name, words in wordlists if lower in words]
             if text_flags:
                 names += ["flag=" + name for name, holds in text_flags if holds(text)]
-            before = len(raw)
             raw += chain.from_iterable(filter(None, map(index_get, names)))   # known values only
             shape_key = (text.translate(table), kind)
             shape_part = shape_cache.get(shape_key)
