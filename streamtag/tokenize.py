@@ -60,7 +60,8 @@ _NAME = rf"{_WORD_CHAR}++(?:-++{_WORD_CHAR}++)*+"
 
 _HEX = "[0-9A-Fa-f]"
 _H16 = f"{_HEX}{{1,4}}+"  # possessive: giving back a hex digit can never help
-_OCTET = r"(?>25[0-5]|2[0-4]\d|1\d\d|[1-9]?\d)"  # longest valid octet first; atomic
+# Structured forms (addresses, timestamps, versions) use ASCII digits only, as their standards do.
+_OCTET = r"(?>25[0-5]|2[0-4][0-9]|1[0-9][0-9]|[1-9]?[0-9])"  # longest valid octet first; atomic
 _IPV4_ADDR = rf"{_OCTET}(?:\.{_OCTET}){{3}}"
 
 
@@ -81,11 +82,11 @@ def _ipv6_address() -> str:
     return "(?:" + "|".join(forms) + ")"
 
 
-# After an address or number nothing may continue it: no word character, and no '.' (or ':' for
-# IPv6) that is itself followed by a word character (that would be a longer dotted/colon name).
 # The token would go on as a longer name (a word character, or '-' or '.' then one): used after
 # ids, versions and words so that "deadbeef1.example" or "web--3.example" stays one host.
 _NAME_GOES_ON = rf"{_WORD_CHAR}|-++{_WORD_CHAR}|\.{_WORD_CHAR}"
+# After an address or number nothing may continue it: no word character, and no '.' (or ':' for
+# IPv6) that is itself followed by a word character (that would be a longer dotted/colon name).
 _END_IPV4 = rf"(?!{_WORD_CHAR}|\.{_WORD_CHAR})"
 _END_IPV6 = rf"(?!{_WORD_CHAR}|[.:]{_WORD_CHAR})"
 _END_NUM = rf"(?!{_WORD_CHAR}|\.\d)"
@@ -114,25 +115,26 @@ _EMAIL = (
 
 _UUID = rf"(?:[Uu][Rr][Nn]:[Uu][Uu][Ii][Dd]:)?{_HEX}{{8}}-{_HEX}{{4}}-{_HEX}{{4}}-{_HEX}{{4}}-{_HEX}{{12}}(?!{_NAME_GOES_ON})"
 
-_FRACTION = r"(?:[.,]\d{1,9})?"
-_OFFSET = r"(?:[Zz]|[+\-][0-2]\d(?::?[0-5]\d)?)?"
-_TIME = rf"[0-2]\d:[0-5]\d(?::[0-6]\d{_FRACTION})?"
+_FRACTION = r"(?:[.,][0-9]{1,9})?"
+_OFFSET = r"(?:[Zz]|[+\-][0-2][0-9](?::?[0-5][0-9])?)?"
+_TIME = rf"[0-2][0-9]:[0-5][0-9](?::[0-6][0-9]{_FRACTION})?"
 _TIMESTAMP = (
     # RFC 3339 / ISO 8601 extended: date, optional 'T' time with fraction and offset.
-    rf"\d{{4}}-[01]\d-[0-3]\d(?:[Tt]{_TIME}{_OFFSET})?(?!{_WORD_CHAR}|:\d)"
+    rf"[0-9]{{4}}-[01][0-9]-[0-3][0-9](?:[Tt]{_TIME}{_OFFSET})?(?!{_WORD_CHAR}|:[0-9])"
     # ISO 8601 basic: 20260301T120000Z.
-    rf"|\d{{8}}[Tt]\d{{6}}(?:[.,]\d{{1,9}})?{_OFFSET}(?!{_WORD_CHAR})"
+    rf"|[0-9]{{8}}[Tt][0-9]{{6}}(?:[.,][0-9]{{1,9}})?{_OFFSET}(?!{_WORD_CHAR})"
     # Time alone (second token of 'YYYY-MM-DD HH:MM:SS'; syslog 'Oct 11 22:14:15').
-    rf"|[0-2]\d:[0-5]\d:[0-6]\d{_FRACTION}{_OFFSET}(?!{_WORD_CHAR}|:{_WORD_CHAR})"
+    rf"|[0-2][0-9]:[0-5][0-9]:[0-6][0-9]{_FRACTION}{_OFFSET}(?!{_WORD_CHAR}|:{_WORD_CHAR})"
 )
 
-_IPV4 = rf"{_IPV4_ADDR}(?::\d{{1,5}}|/\d{{1,2}})?{_END_IPV4}"
+_IPV4 = rf"{_IPV4_ADDR}(?::[0-9]{{1,5}}|/[0-9]{{1,2}})?{_END_IPV4}"
 # Guard first: the hex/colon run holds 3 to 9 colon-separated fields of at most 4 hex digits (the
 # most any IPv6 text form has). It fails fast on words and on over-long runs like "1:1:1:...", which
 # would otherwise send every start position through all nine forms.
 _IPV6_GUARD = r"(?=[0-9A-Fa-f]{0,4}+(?::[0-9A-Fa-f]{0,4}+){2,8}+(?![:0-9A-Fa-f]))"
-_IPV6 = rf"{_IPV6_GUARD}{_ipv6_address()}(?:%[\w.~\-]{{0,31}}[\w~\-])?(?:/\d{{1,3}})?{_END_IPV6}"
-_MAC = rf"{_HEX}{{2}}(?::{_HEX}{{2}}){{5}}(?![\w{_MARKS}:\-]|\.{_WORD_CHAR})|{_HEX}{{2}}(?:-{_HEX}{{2}}){{5}}(?![\w{_MARKS}:\-]|\.{_WORD_CHAR})"
+_IPV6 = rf"{_IPV6_GUARD}{_ipv6_address()}(?:%[\w.~\-]{{0,31}}[\w~\-])?(?:/[0-9]{{1,3}})?{_END_IPV6}"
+_END_MAC = rf"(?![{_WORD_CHARS}:\-]|\.{_WORD_CHAR})"
+_MAC = rf"{_HEX}{{2}}(?::{_HEX}{{2}}){{5}}{_END_MAC}|{_HEX}{{2}}(?:-{_HEX}{{2}}){{5}}{_END_MAC}"
 
 _PATH_CHAR = r"[\w.+@%~\-/]"
 _PATH_END = r"[\w+@%~\-/]"  # a path does not end with '.', so "see /var/log/x.log." drops the '.'
@@ -141,19 +143,19 @@ _WIN_END = r"[\w+@%~$#&!\-\\/]"
 _PATH = (
     # Unix: /abs, ./rel, ../rel, ~/x, ~user/x, with at least one character after the first '/';
     # not after a word character (read/write stays three tokens).
-    rf"(?<!\w)(?:~[\w.\-]{{0,32}}+|\.\.?)?/{_PATH_CHAR}*{_PATH_END}"
+    rf"(?<![{_WORD_CHARS}])(?:~[\w.\-]{{0,32}}+|\.\.?)?/{_PATH_CHAR}*{_PATH_END}"
     # Windows drive path C:\x or C:/x, and UNC \\server\share.
-    rf"|(?<!\w)[A-Za-z]:[\\/](?:{_WIN_CHAR}*{_WIN_END})?"
+    rf"|(?<![{_WORD_CHARS}])[A-Za-z]:[\\/](?:{_WIN_CHAR}*{_WIN_END})?"
     rf"|\\\\[\w.\-]++\\(?:{_WIN_CHAR}*{_WIN_END})?"
 )
 
-_VERSION_SUFFIX = r"(?:[A-Za-z]++\d*+)?(?:[\-+~][0-9A-Za-z]++(?:[.\-+][0-9A-Za-z]++){0,10})?"
-_VERSION = rf"(?:[vV]\d++(?:\.\d++)*+|\d++\.\d++\.\d++(?:\.\d++)*+){_VERSION_SUFFIX}(?!{_NAME_GOES_ON})"
+_VERSION_SUFFIX = r"(?:[A-Za-z]++[0-9]*+)?(?:[\-+~][0-9A-Za-z]++(?:[.\-+][0-9A-Za-z]++){0,10})?"
+_VERSION = rf"(?:[vV][0-9]++(?:\.[0-9]++)*+|[0-9]++\.[0-9]++\.[0-9]++(?:\.[0-9]++)*+){_VERSION_SUFFIX}(?!{_NAME_GOES_ON})"
 
 _HEXID = (
     rf"0[xX]{_HEX}++(?!{_NAME_GOES_ON})"
     # Long hex id: at least 8 hex digits, at least one letter a-f and one decimal digit.
-    rf"|(?=\d*+[A-Fa-f])(?=[A-Fa-f]*+\d){_HEX}{{8,}}+(?!{_NAME_GOES_ON})"
+    rf"|(?=[0-9]*+[A-Fa-f])(?=[A-Fa-f]*+[0-9]){_HEX}{{8,}}+(?!{_NAME_GOES_ON})"
 )
 
 _NUMBER = (
@@ -177,7 +179,8 @@ _PUNCT = (
 # but accepts only what no rule of higher priority could claim: its look-ahead hands anything
 # ambiguous on to the full rules below, so the result is the same as with the full rules alone
 # (a test checks this). Without them a plain word or a bracket would first fail a dozen richer
-# rules; with them tokenizing takes about half the time.
+# rules.
+
 # After a fast-path token: would an e-mail local part or a URL scheme (RFC 3986 section 3.1,
 # bounded as in _URL) go on from here? Over-cautious is fine: the full rules then decide.
 _LOCAL_PART_OR_SCHEME_GOES_ON = r"[\w.+\-]{0,63}+@|[A-Za-z0-9+.\-]{0,31}+://"
@@ -191,9 +194,9 @@ _FAST_WORD = (
 _FAST_PUNCT = r"[\[\](){},;\"'<>|!?&$^`@%]|=(?!=)|:(?!:)|-(?![\-\d])|\.(?![./])"
 _FAST_NUMBER = (
     # Integer or decimal with an optional ASCII unit that has a letter past 'f' and does not start
-    # with 'x' (so the token is never a hex id like 0x1f or 12ab34cd); not followed by anything that would make it an address, a
-    # timestamp, a version or an e-mail local part.
-    # Possessive throughout: it takes the longest reading or defers, never a shorter one.
+    # with 'x' (so the token is never a hex id like 0x1f or 12ab34cd); not followed by anything
+    # that would make it an address, a timestamp, a version or an e-mail local part. Possessive
+    # throughout: it takes the longest reading or defers, never a shorter one.
     r"\d++(?:\.\d++)?+(?:%|(?![xX])(?=[a-fA-F]{0,5}+[g-zG-Z])[a-zA-Z]{1,6}+(?:/[^\W\d_]{1,3}+)?+)?+"
     rf"(?![{_WORD_CHARS}.:\-@+%])"
 )
@@ -261,9 +264,8 @@ def _build_pattern(fast_paths: bool = True) -> tuple[re.Pattern, tuple]:
     slower (kept for the test that proves the fast paths change nothing)."""
     group_kinds: list = [None]  # group 0 is the whole match
     branches = []
-    for guard, alternatives in zip(["", *_FIRST_CHAR.values()], _ALTERNATIVES):
-        if not fast_paths and not guard and alternatives is _ALTERNATIVES[0]:
-            continue
+    guarded = list(zip(["", *_FIRST_CHAR.values()], _ALTERNATIVES))
+    for guard, alternatives in guarded if fast_paths else guarded[1:]:
         named = []
         for kind, body in alternatives:
             named.append(f"(?P<{kind}_{len(group_kinds)}>{body})")
