@@ -22,7 +22,7 @@ import time
 from streamtag.features import FeatureExtractor, FeatureSpec
 
 HOSTS = ["web-03", "db-core-1", "edge7.quillnet.test", "cache-2", "relay-north", "vault-a9"]
-SERVICES = ["sshd", "cron", "nginxish", "authd", "queue-worker", "zeldad", "postmux"]
+SERVICES = ["sshd", "cron", "vellumd", "authd", "queue-worker", "zeldad", "postmux"]
 ACCOUNTS = ["mara.quill", "tobin_vesk", "root", "svc-backup", "ilsa.dorne", "okko"]
 PATHS = ["/var/lib/zeld/state.db", "/etc/quill/app.conf", "/srv/data/batch-7/input.csv", "/tmp/x1"]
 TEMPLATES = [
