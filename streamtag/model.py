@@ -167,6 +167,7 @@ def model_from_bytes(data: bytes, name: str = "<model>") -> Model:
     header_bytes = arrays.pop("header").tobytes()
     stored_id = arrays.pop("content_id").tobytes().decode("ascii", "replace")
     header = _parse_header(header_bytes, name)
+    _check_feature_spec(header.get("feature_spec"), name)
     run_info = _parse_run_info(arrays.pop("run_info", None))
     if _content_hash(header_bytes, arrays) != stored_id:
         raise ModelError(f"{name}: model content does not match its id (file corrupted)")
@@ -222,6 +223,17 @@ def _parse_header(header_bytes: bytes, name: str) -> dict:
             f"{name}: model format version {version} is not supported (this streamtag reads {FORMAT_VERSION})"
         )
     return header
+
+
+def _check_feature_spec(spec: object, name: str) -> None:
+    """A model whose stored feature spec cannot be read is a bad model file, not a bad config."""
+    from streamtag.errors import ConfigError
+    from streamtag.features import FeatureSpec
+
+    try:
+        FeatureSpec.from_dict(spec)
+    except ConfigError as exc:
+        raise ModelError(f"{name}: stored feature spec is unusable ({exc})") from None
 
 
 def _parse_run_info(array: np.ndarray | None) -> dict:

@@ -20,7 +20,7 @@ def small_model(seed: int = 0) -> Model:
     emission[3] = 0.0  # an all-zero row is dropped on save
     return Model(
         labels=labels,
-        feature_spec={"bias": True},
+        feature_spec={"version": 1},
         vocabulary=vocabulary,
         emission=emission,
         transitions=rng.normal(size=(3, 3)),
@@ -112,3 +112,11 @@ def test_object_arrays_are_refused_never_unpickled():
             archive.writestr(f"{name}.npy", inner.getvalue())
     with pytest.raises(ModelError):
         model_from_bytes(buffer.getvalue())
+
+
+def test_unusable_feature_spec_is_a_model_error():
+    model = small_model()
+    model.feature_spec = {"token": {"groups": ["no-such-group"]}}
+    data, _ = model_to_bytes(model)
+    with pytest.raises(ModelError, match="feature spec"):
+        model_from_bytes(data, "m.stm")
