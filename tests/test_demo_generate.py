@@ -17,7 +17,9 @@ import pytest
 
 from streamtag.demo import generate, scenario
 from streamtag.errors import StreamtagError
-from streamtag.spans import char_to_token_spans
+from seqeval.metrics.sequence_labeling import get_entities
+
+from streamtag.spans import char_to_token_spans, spans_to_bio
 from streamtag.tokenize import tokenize
 
 REPO = Path(__file__).resolve().parents[1]
@@ -285,6 +287,107 @@ def test_test_names_are_mostly_unseen_in_training(splits):
     test_names = set(span_texts(splits["test"], {"person", "host", "account"}))
     unseen_share = sum(name not in seen for name in test_names) / len(test_names)
     assert unseen_share >= 0.5, unseen_share
+
+
+# ------------------------------------------------------------------------------- held-out shapes --
+# Evaluating on templates the model never trained on measures generalisation to new line layouts
+# (held-out / out-of-distribution test data, common practice in NER evaluation).
+
+@pytest.fixture(scope="module")
+def detailed() -> dict[str, list]:
+    return {split: generate.generate_split_detailed(split, n, seed=7) for split, n in SIZES.items()}
+
+
+def test_a_quarter_of_the_shapes_is_held_out():
+    held_out = generate.held_out_shapes()
+    assert len(set(held_out)) == len(held_out)
+    assert 0.25 <= len(held_out) / generate.shape_count() <= 0.30
+    families = {shape.split("/")[0] for shape in held_out}
+    assert families == {family.name for family in generate.FAMILIES}
+
+
+@pytest.mark.parametrize("seed", [7, 3])
+def test_train_never_contains_a_held_out_shape(seed):
+    held_out = set(generate.held_out_shapes())
+    train_shapes = {example.shape for example in generate.generate_split_detailed("train", 4000, seed)}
+    assert not train_shapes & held_out
+    assert len(train_shapes) >= 300
+
+
+def test_dev_and_test_draw_a_third_of_their_lines_from_held_out_shapes(detailed):
+    held_out = set(generate.held_out_shapes())
+    for split in ("dev", "test"):
+        examples = detailed[split]
+        from_held_out = [example for example in examples if example.shape in held_out]
+        assert 0.27 <= len(from_held_out) / len(examples) <= 0.40, split
+        # many different held-out shapes, and the shared shapes are still there too
+        assert len({example.shape for example in from_held_out}) >= (150 if split == "test" else 80), split
+        assert len({example.shape for example in examples} - held_out) >= (300 if split == "test" else 150)
+
+
+def _held_out_only_phrases() -> list[str]:
+    """Literal pieces (12+ characters) of held-out templates that no shared template contains."""
+    shared_text, held_out_literals = [], []
+    for family in generate.FAMILIES:
+        for index, template in enumerate(family.headers + family.messages):
+            if not isinstance(template, str):          # a JSON layout: no held-out one exists
+                continue
+            held_out = (index >= family.shared_headers if index < len(family.headers)
+                        else index - len(family.headers) >= family.shared_messages)
+            literals = [part.strip().lower() for part in re.split(r"\{[A-Za-z_0-9]+\}", template)]
+            (held_out_literals if held_out else shared_text).extend(literals)
+    joined = "\n".join(shared_text)
+    return sorted({piece for piece in held_out_literals if len(piece) >= 12 and piece not in joined})
+
+
+def test_held_out_wording_never_reaches_train_text(splits):
+    # Checks the lines themselves, not only the shape ids: a held-out phrase in a train line would
+    # leak the layout (lower-cased: odd-case noise may change the case).
+    phrases = _held_out_only_phrases()
+    assert len(phrases) >= 15
+    train_text = "\n".join(example["text"].lower() for example in splits["train"])
+    test_text = "\n".join(example["text"].lower() for example in splits["test"])
+    assert [phrase for phrase in phrases if phrase in train_text] == []
+    assert sum(phrase in test_text for phrase in phrases) >= 0.8 * len(phrases)
+
+
+def _token_tags(example: dict) -> list[str]:
+    tokens = tokenize(example["text"])
+    char_spans = [(s["start"], s["end"], s["label"]) for s in example["spans"]]
+    token_spans, misaligned = char_to_token_spans(char_spans, tokens.starts, tokens.ends)
+    assert misaligned == 0
+    return spans_to_bio(token_spans, len(tokens.texts))
+
+
+def test_test_split_has_adjacent_entities_of_one_type(splits):
+    # Two chunks of one type with nothing between them: IOB2 starts the second with B-
+    # (Tjong Kim Sang & Veenstra 1999, "Representing Text Chunks"); seqeval's chunker is the
+    # reference that must find both chunks.
+    adjacent = Counter()
+    for example in splits["test"]:
+        tags = _token_tags(example)
+        chunks = get_entities(tags)
+        assert len(chunks) == len(example["spans"]), example["text"]
+        for (label, _, end), (next_label, start, next_end) in zip(chunks, chunks[1:]):
+            if label == next_label and start == end + 1:
+                adjacent["multi-token" if next_end > start else "one-token"] += 1
+    assert adjacent["multi-token"] >= 15 and adjacent["one-token"] >= 15, adjacent
+
+
+def test_test_split_has_the_awkward_cases(splits):
+    test = splits["test"]
+    people = span_texts(test, {"person"})
+    lower_people = [name for name in people if name == name.lower()]
+    assert len(lower_people) >= 0.05 * len(people)
+    assert any(" " in name for name in lower_people)             # full names typed in lower case
+    places = span_texts(test, {"place"})
+    site_services = set(scenario.PLACE_NAMED_SERVICES)
+    assert sum(place.lower() == place and place in site_services for place in places) >= 3
+    services = span_texts(test, {"service"})
+    assert sum(service.lower() in site_services and service[0].isupper() for service in services) >= 5
+    chat_orgs = [example for example in test if re.match(r"(<|\[\d|\d\d:\d\d <|\(\d)", example["text"])
+                 and any(s["label"] == "org" for s in example["spans"])]
+    assert len(chat_orgs) >= 5
 
 
 def test_pools_of_different_splits_are_disjoint():

@@ -5,6 +5,18 @@ key=value, chat, support ticket, monitoring alert, audit, web access) and a *mes
 slots in both are filled from the invented world in `scenario`. Every (family, header, template)
 triple is one line shape; `shape_count()` says how many there are.
 
+Held-out shapes. Without them train and test share every line shape and the test split measures
+little more than memorised templates. So a fixed part of the templates is held out of train: 33
+message templates (13 system, 8 chat, 4 ticket, 3 alert, 3 audit, 2 web) and 4 header variants
+(key=value, chat, alert, web). A shape is held out when its header or its message is; that is 400 of
+1462 shapes (27%, `held_out_shapes()`). Train uses shared shapes only; dev and test draw a third of
+their lines from held-out shapes (HELD_OUT_LINE_SHARE) and the rest from the shared ones. The
+held-out templates are ordinary lines of the same world, but put names where the shared ones do not:
+lower-cased person names, a site-named service capitalised at the start of a sentence, a site typed
+in lower case, partners' short names in chat, and entities of one type side by side with nothing
+between them ("sites affected: Ombrevale Brask Hollow"), which BIO must tag B-X I-X B-X. Dev and test
+also carry more noise (NOISE_SHARE: typos, odd casing, extra spaces, truncation).
+
 Spans are recorded while the string is composed, never found afterwards. Entity boundaries sit on
 token boundaries both of `streamtag.tokenize` and of a plain log tokenizer (split on white space,
 brackets, quotes, commas and '='; trailing '.', ',', ':', ';', '!' or '?' cut off): an address:port or
@@ -267,6 +279,12 @@ _LABELLED: dict[str, tuple[Callable[[_Context], str], str]] = {
     "given_lc": (lambda ctx: _person(ctx)[0].lower(), "person"),
     "place": (_place, "place"),
     "org": (_org, "org"),
+    # The awkward cases the held-out shapes lean on: a site-named service written like a name at the
+    # start of a sentence, a site typed in lower case (spelt like that service), a partner's short name.
+    "Placeservice": (lambda ctx: ctx.rng.choice(world.PLACE_NAMED_SERVICES).capitalize(), "service"),
+    "place_lc": (lambda ctx: ctx.rng.choice(world.PLACES).lower(), "place"),
+    "orgshort": (lambda ctx: ctx.rng.choice(world.ORG_SHORT_NAMES), "org"),
+    "person_lc": (lambda ctx: " ".join(_person(ctx)).lower(), "person"),
 }
 
 _UNLABELLED: dict[str, Callable[[_Context], str]] = {
@@ -415,6 +433,24 @@ SYSTEM_MESSAGES: tuple[str, ...] = (
     "flushed {big} records in {ms} ms",
 )
 
+# Held-out templates (see "Held-out shapes" below): never in train. They put names where the shared
+# templates do not: at the start of a message, lower-cased, or side by side with no word between them.
+SYSTEM_MESSAGES_HELD_OUT: tuple[str, ...] = (
+    "{given_lc} restarted {service} on {nhost} outside the change window",
+    "failover of {placeservice} from {place} to {place2} finished in {ms} ms",
+    "{Placeservice} sync stalled on {host}, {num} batches waiting",
+    "{errcode} while {service} read {path} for {org}",
+    "on-call pair {person} {person2} paged for {errcode}",
+    "sites affected: {place} {place2} {place3}",
+    "drained {host} {host2} {host3} before moving {service}",
+    "{nhost}: {service} lost its lease on {ip6}",
+    "session for {account} opened from {place} via {ip}, owner {person_lc}",
+    "retention removed {big} files under {path}, requested by {given}",
+    "{service} {service2} restarted by {account} after {errcode}",
+    "mirror {host} for {place} now pulls from {nhost}",
+    "partner {orgshort} rotated the key used by {account}",
+)
+
 CHAT_MESSAGES: tuple[str, ...] = (
     "can someone look at {host}? it stopped answering after the {service} deploy",
     "{Host} is down again, I'm on it",
@@ -450,6 +486,17 @@ CHAT_MESSAGES: tuple[str, ...] = (
     "anyone seen {given}? {nhost} is asking for a password",
 )
 
+CHAT_MESSAGES_HELD_OUT: tuple[str, ...] = (
+    "{given_lc} {given_lc2} you around? {nhost} again",
+    "{orgshort} folks say {placeservice} is fine on their side",
+    "heading to {place_lc} tomorrow, {nhost} can wait",
+    "talked to {person} {org} about the invoice, they blame {service}",
+    "{Placeservice} is down in {place} since {hhmm}",
+    "lol {nhost} ate {path} again",
+    "{place} {place2} and {place3} are on the new {service} now",
+    "cc {person} {person2}: {host} is yours this week",
+)
+
 TICKET_MESSAGES: tuple[str, ...] = (
     "I can't log in to {service} since this morning, it shows {errcode}.",
     "Please create an account for {person}, who starts in {place} on Monday.",
@@ -471,6 +518,13 @@ TICKET_MESSAGES: tuple[str, ...] = (
     "Could you rename host {host} to {host2}?",
 )
 
+TICKET_MESSAGES_HELD_OUT: tuple[str, ...] = (
+    "Hi, this is {given_lc} from {place}: {service} says {errcode}.",
+    "{person} {person2} and {person3} need access to {path}.",
+    "{Placeservice} in {place} rejects {email} with {errcode}.",
+    "Please ask the {org} {place} office to resend the file for {account}.",
+)
+
 ALERT_MESSAGES: tuple[str, ...] = (
     "disk {path} is {pct}% full",
     "{service} not responding on {hostport}",
@@ -489,6 +543,12 @@ ALERT_MESSAGES: tuple[str, ...] = (
     "on-call {person} has not acknowledged for {num} min",
 )
 
+ALERT_MESSAGES_HELD_OUT: tuple[str, ...] = (
+    "{nhost} unreachable from {place} ({errcode})",
+    "{placeservice} latency {ms} ms at {place}",
+    "hosts down: {host} {host2} {host3}",
+)
+
 AUDIT_MESSAGES: tuple[str, ...] = (
     "op=login result=ok src={ip} host={host}",
     "op=login result=fail src={ipport} reason={errcode}",
@@ -505,6 +565,12 @@ AUDIT_MESSAGES: tuple[str, ...] = (
     'op=badge site="{place}" holder="{person}"',
 )
 
+AUDIT_MESSAGES_HELD_OUT: tuple[str, ...] = (
+    'op=impersonate by="{person_lc}" as={account} host={nhost}',
+    'op=share target={path} with="{person} {org}"',
+    "op=site-move subject={account} from={place} to={place2}",
+)
+
 WEB_REQUESTS: tuple[str, ...] = (
     "GET /tickets/{num} HTTP/1.1",
     "POST /api/v2/login HTTP/1.1",
@@ -513,6 +579,11 @@ WEB_REQUESTS: tuple[str, ...] = (
     "DELETE /api/v2/sessions/{uuid} HTTP/1.1",
     "GET /reports/{place_slug}/daily.csv HTTP/1.1",
     "HEAD / HTTP/1.1",
+)
+
+WEB_REQUESTS_HELD_OUT: tuple[str, ...] = (
+    "PATCH /api/v2/tickets/{num} HTTP/1.1",
+    "GET /healthz HTTP/1.1",
 )
 
 # Shapes the labelled splits never contain: only the doubtful part of the demo stream uses them.
@@ -534,14 +605,34 @@ NOVEL_MESSAGES: tuple[str, ...] = (
 
 @dataclass(frozen=True)
 class _Family:
-    """A kind of line: its headers (with a {MSG} slot, or a JSON key layout) and message templates."""
+    """A kind of line: its headers (with a {MSG} slot, or a JSON key layout) and message templates.
+
+    `headers` and `messages` list the shared ones first, then the held-out ones; the first
+    `shared_headers` headers and `shared_messages` messages are shared by all splits.
+    """
 
     name: str
     headers: tuple
     messages: tuple[str, ...]
     weight: float
+    shared_headers: int
+    shared_messages: int
     is_json: bool = False
     truncatable: bool = True
+
+    def is_held_out(self, header_index: int, message_index: int) -> bool:
+        return header_index >= self.shared_headers or message_index >= self.shared_messages
+
+    @property
+    def n_held_out(self) -> int:
+        return len(self.headers) * len(self.messages) - self.shared_headers * self.shared_messages
+
+
+def _family(name: str, headers: tuple[tuple, tuple], messages: tuple[tuple, tuple], weight: float,
+            **options) -> _Family:
+    """A family from (shared, held-out) headers and (shared, held-out) messages."""
+    return _Family(name, headers[0] + headers[1], messages[0] + messages[1], weight,
+                   len(headers[0]), len(messages[0]), **options)
 
 
 _SYSLOG_5424_HEADERS = (
@@ -600,24 +691,46 @@ _WEB_HEADERS = (
     '{ip6} - {account} [{clf}] "{MSG}" {status} {bytes}',
 )
 
-FAMILIES: tuple[_Family, ...] = (
-    _Family("syslog5424", _SYSLOG_5424_HEADERS, SYSTEM_MESSAGES, 0.12),
-    _Family("syslogbsd", _SYSLOG_BSD_HEADERS, SYSTEM_MESSAGES, 0.11),
-    _Family("app", _APP_HEADERS, SYSTEM_MESSAGES, 0.13),
-    _Family("json", _JSON_LAYOUTS, SYSTEM_MESSAGES, 0.11, is_json=True, truncatable=False),
-    _Family("kv", _KV_HEADERS, SYSTEM_MESSAGES, 0.08),
-    _Family("chat", _CHAT_HEADERS, CHAT_MESSAGES, 0.14),
-    _Family("ticket", _TICKET_HEADERS, TICKET_MESSAGES, 0.08),
-    _Family("alert", _ALERT_HEADERS, ALERT_MESSAGES, 0.09),
-    _Family("audit", _AUDIT_HEADERS, AUDIT_MESSAGES, 0.08),
-    _Family("web", _WEB_HEADERS, WEB_REQUESTS, 0.06),
+# Held-out header variants: the same kinds of line with a field added or moved.
+_KV_HEADERS_HELD_OUT = (
+    'ts={iso} svc={service} who="{person_lc}" where={place_lc} msg="{MSG}"',
 )
-_NOVEL = _Family("novel", ("{MSG}",), NOVEL_MESSAGES, 0.0)
+_CHAT_HEADERS_HELD_OUT = (
+    "({hhmm}) {given}: {MSG}",
+)
+_ALERT_HEADERS_HELD_OUT = (
+    "{SEV} [{place}] {host} {MSG}",
+)
+_WEB_HEADERS_HELD_OUT = (
+    '{fqdn} {ip} - {acct_or_dash} [{clf}] "{MSG}" {status} {bytes}',
+)
+
+_SYSTEM = (SYSTEM_MESSAGES, SYSTEM_MESSAGES_HELD_OUT)
+FAMILIES: tuple[_Family, ...] = (
+    _family("syslog5424", (_SYSLOG_5424_HEADERS, ()), _SYSTEM, 0.12),
+    _family("syslogbsd", (_SYSLOG_BSD_HEADERS, ()), _SYSTEM, 0.11),
+    _family("app", (_APP_HEADERS, ()), _SYSTEM, 0.13),
+    _family("json", (_JSON_LAYOUTS, ()), _SYSTEM, 0.11, is_json=True, truncatable=False),
+    _family("kv", (_KV_HEADERS, _KV_HEADERS_HELD_OUT), _SYSTEM, 0.08),
+    _family("chat", (_CHAT_HEADERS, _CHAT_HEADERS_HELD_OUT), (CHAT_MESSAGES, CHAT_MESSAGES_HELD_OUT), 0.14),
+    _family("ticket", (_TICKET_HEADERS, ()), (TICKET_MESSAGES, TICKET_MESSAGES_HELD_OUT), 0.08),
+    _family("alert", (_ALERT_HEADERS, _ALERT_HEADERS_HELD_OUT), (ALERT_MESSAGES, ALERT_MESSAGES_HELD_OUT), 0.09),
+    _family("audit", (_AUDIT_HEADERS, ()), (AUDIT_MESSAGES, AUDIT_MESSAGES_HELD_OUT), 0.08),
+    _family("web", (_WEB_HEADERS, _WEB_HEADERS_HELD_OUT), (WEB_REQUESTS, WEB_REQUESTS_HELD_OUT), 0.06),
+)
+_NOVEL = _family("novel", (("{MSG}",), ()), (NOVEL_MESSAGES, ()), 0.0)
 
 
 def shape_count() -> int:
     """Number of distinct line shapes (family x header x message template) in the labelled splits."""
     return sum(len(family.headers) * len(family.messages) for family in FAMILIES)
+
+
+def held_out_shapes() -> tuple[str, ...]:
+    """Ids ("family/header/message") of the shapes train never contains; dev and test use them."""
+    return tuple(f"{family.name}/{h}/{m}" for family in FAMILIES
+                 for h in range(len(family.headers)) for m in range(len(family.messages))
+                 if family.is_held_out(h, m))
 
 
 def novel_shape_count() -> int:
@@ -803,9 +916,23 @@ def _check_count(n: int) -> None:
         raise StreamtagError(f"number of lines must be a whole number >= 0, got {n!r}")
 
 
-def _make_line(family: _Family, ctx: _Context, noise: tuple[str, ...], typos: int = 1) -> DetailedExample:
+def _shared_shape(family: _Family, rng: Random) -> tuple[int, int]:
+    return rng.randrange(family.shared_headers), rng.randrange(family.shared_messages)
+
+
+def _held_out_shape(family: _Family, rng: Random) -> tuple[int, int]:
+    """A shape with a held-out message (any header) or, less often, a held-out header (any message)."""
+    has_messages = family.shared_messages < len(family.messages)
+    has_headers = family.shared_headers < len(family.headers)
+    if has_messages and (not has_headers or rng.random() < 0.65):
+        return rng.randrange(len(family.headers)), rng.randrange(family.shared_messages, len(family.messages))
+    return rng.randrange(family.shared_headers, len(family.headers)), rng.randrange(len(family.messages))
+
+
+def _make_line(family: _Family, ctx: _Context, noise: tuple[str, ...], typos: int = 1,
+               held_out: bool = False) -> DetailedExample:
     rng = ctx.rng
-    header_index, message_index = rng.randrange(len(family.headers)), rng.randrange(len(family.messages))
+    header_index, message_index = (_held_out_shape if held_out else _shared_shape)(family, rng)
     fragments = _compose(family, family.headers[header_index], family.messages[message_index], ctx)
     _apply_noise(fragments, noise, rng, typos)
     text, spans, body_start = _assemble(fragments)
@@ -825,17 +952,29 @@ def _context(rng: Random, pool: world.SplitPool, index: int) -> _Context:
     return _Context(rng, pool, _BASE_TIME + timedelta(minutes=index))
 
 
-def generate_split_detailed(split: str, n: int, seed: int, noise_share: float = 0.15) -> list[DetailedExample]:
-    """Like `generate_split`, but keeps the shape id and the noise applied to each line."""
+# Share of each split's lines drawn from held-out shapes, and share of lines with noise. Dev matches
+# test so that choosing a model on dev rewards the same generalisation the test split measures.
+HELD_OUT_LINE_SHARE: dict[str, float] = {"train": 0.0, "dev": 1 / 3, "test": 1 / 3}
+NOISE_SHARE: dict[str, float] = {"train": 0.15, "dev": 0.25, "test": 0.25}
+
+
+def generate_split_detailed(split: str, n: int, seed: int, noise_share: float | None = None) -> list[DetailedExample]:
+    """Like `generate_split`, but keeps the shape id and the noise applied to each line.
+
+    `noise_share` None means the split's default (NOISE_SHARE)."""
     _check_split(split)
     _check_count(n)
     rng = Random(f"streamtag-demo/{split}/{seed}")
     pool = world.POOLS[split]
     weights = [family.weight for family in FAMILIES]
+    held_out_share = HELD_OUT_LINE_SHARE[split]
+    noise_share = NOISE_SHARE[split] if noise_share is None else noise_share
     examples = []
     for index in range(n):
         family = rng.choices(FAMILIES, weights=weights)[0]
-        examples.append(_make_line(family, _context(rng, pool, index), _choose_noise(rng, noise_share)))
+        held_out = held_out_share > 0 and rng.random() < held_out_share
+        examples.append(_make_line(family, _context(rng, pool, index), _choose_noise(rng, noise_share),
+                                   held_out=held_out))
     return examples
 
 
@@ -847,8 +986,9 @@ def generate_split(split: str, n: int, seed: int) -> list[dict]:
 def generate_stream(n: int, seed: int, doubtful_share: float = 0.1) -> list[dict]:
     """`n` unlabelled lines {"text", "doubtful"} for the daemon demo.
 
-    Exactly round(n * doubtful_share) lines are doubtful: unseen shapes, heavy noise and ambiguous
-    words, with names from the test pool. The others are ordinary lines with train-pool names.
+    Exactly round(n * doubtful_share) lines are doubtful: unseen shapes (novel or held-out), heavy
+    noise and ambiguous words, with names from the test pool. The others are ordinary lines of shared
+    shapes with train-pool names.
     """
     _check_count(n)
     if not 0.0 <= doubtful_share <= 1.0:
@@ -866,7 +1006,8 @@ def generate_stream(n: int, seed: int, doubtful_share: float = 0.1) -> list[dict
             line = _make_line(_NOVEL, _context(rng, world.POOLS["test"], index), _choose_noise(rng, 0.3))
         else:
             family = rng.choices(FAMILIES, weights=weights)[0]
-            line = _make_line(family, _context(rng, world.POOLS["test"], index), NOISE_KINDS, typos=3)
+            line = _make_line(family, _context(rng, world.POOLS["test"], index), NOISE_KINDS, typos=3,
+                              held_out=rng.random() < 0.5)
         lines.append({"text": line.text, "doubtful": doubtful})
     return lines
 
