@@ -53,8 +53,10 @@ _GIVEN_HEADS = ("Or", "Ma", "Te", "Ila", "Bre", "Ky", "Sa", "Do", "Fe", "Lu", "N
                 "Jo", "Wy", "Ca", "Pe", "Ysa", "Ta", "Mi", "Ele", "Qui", "Ro", "Sen", "Uma", "Bal", "Dre", "Ivo")
 _GIVEN_TAILS = ("la", "ren", "vik", "sel", "mir", "dan", "wyn", "tha", "rio", "bel", "nis", "quin", "dra",
                 "lo", "vel", "ssa", "ko", "ther", "ril", "mae")
-# Combinations that happen to be well-known fictional characters, brands or public figures.
-_NAME_DENYLIST = ("Kylo", "Mario", "Halo", "Lula", "Tesla", "Carlo", "Nessa", "Rolo", "Tanis", "Mila", "Nether")
+# Combinations that happen to be well-known fictional characters, brands or public figures, or words
+# that must not turn up as a name or, lower-cased, as a host named after someone.
+_NAME_DENYLIST = ("Kylo", "Mario", "Halo", "Lula", "Tesla", "Carlo", "Nessa", "Rolo", "Tanis", "Mila", "Nether",
+                  "Penis", "Tether", "Peril", "Salo", "Malo", "Luther", "Mather")
 
 _FAMILY_HEADS = ("Vor", "Quel", "Dask", "Ambr", "Thren", "Ossil", "Mirr", "Kest", "Yvar", "Brenn", "Zoll",
                  "Ulth", "Pask", "Dree", "Orv", "Feln", "Gask", "Holl", "Imber", "Trask")
