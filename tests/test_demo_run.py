@@ -250,6 +250,15 @@ def test_marked_line_fits_the_width_and_never_cuts_a_span():
     assert demo.fit_marked(Screen(io.StringIO(), False, list(LABELS)), text, spans, 200).count("[") == 6
 
 
+def test_a_line_whose_spans_lie_far_right_is_shown_from_shortly_before_them():
+    text = '{"ts": "2025-02-04T15:53:33+05:30", "level": "info", "service": "vaskmux", "msg": "ok\tdone"}'
+    start = text.index("vaskmux")
+    plain = demo.fit_marked(Screen(io.StringIO(), False, list(LABELS)), text, [(start, start + 7, "service")], 50)
+    assert len(plain) <= 50 and plain.startswith("…")
+    assert "[vaskmux|service]" in plain
+    assert "\t" not in plain and "\ufffd" not in plain    # a tab is shown as one space
+
+
 def test_live_screen_redraws_in_place_with_ecma48_sequences():
     # CUU = CSI n A (cursor up n lines), EL = CSI K (erase to end of line), ED = CSI J (erase below):
     # ECMA-48 sections 8.3.22, 8.3.41 and 8.3.39 (section numbers from memory).

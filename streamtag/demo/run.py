@@ -53,6 +53,7 @@ KEEP_WRITING_OLD_SECONDS = 1.0  # writing through the renamed file before reopen
 CATCH_UP_SECONDS = 20.0        # longest wait for the daemon to tag the last fed lines
 STOP_SECONDS = 30.0            # longest wait for the daemon to exit after SIGTERM
 LAST_LINES = 5
+LEAD_COLUMNS = 12              # text kept before the first span when a shown line must be cut
 
 
 # ============================================================================ the demo folder ========
@@ -290,8 +291,16 @@ def fit_marked(screen: Screen, text: str, spans: list[tuple[int, int, str]], wid
     """The line with its spans marked, cut so that it takes at most `width` columns.
 
     The plain marking '[text|label]' is 3 + len(label) wider than the text; the coloured one is
-    narrower, so fitting the plain one is enough for both. A span is never cut in half.
+    narrower, so fitting the plain one is enough for both. A span is never cut in half. When the
+    first span lies far to the right (a JSON line's keys, a long header), the view starts shortly
+    before it, so the line shows what was found.
     """
+    text = text.replace("\t", " ")      # same length: offsets stay right; a tab would show as '\ufffd'
+    first = min((start for start, _, _ in spans), default=0)
+    if first > width // 3:
+        skip = first - LEAD_COLUMNS
+        text = "…" + text[skip + 1:]
+        spans = [(start - skip, end - skip, label) for start, end, label in spans]
     room, position, kept = width - 1, 0, []
     cut = len(text)
     for start, end, label in sorted(spans):
@@ -512,7 +521,7 @@ def _shown(path: Path) -> str:
         return str(path)
 
 
-def report(outcome: Outcome, paths: DemoPaths, out: TextIO) -> list[str]:
+def report(outcome: Outcome, paths: DemoPaths, threshold: float, model: str | None, out: TextIO) -> list[str]:
     """Prints the totals and the next commands; returns the problems found (empty: all good)."""
     tally = outcome.tally
     missing = outcome.fed_texts - tally.texts
@@ -532,6 +541,7 @@ def report(outcome: Outcome, paths: DemoPaths, out: TextIO) -> list[str]:
                f"{len(p50s)} one-second intervals" if p50s else "no statistics interval finished")
     inbox, output, review = _shown(paths.inbox), _shown(paths.output), _shown(paths.review)
     replayed, reviewed = _shown(paths.root / "replayed.jsonl"), _shown(paths.root / "reviewed.jsonl")
+    model_option = f" --model {_shown(Path(model))}" if model else ""
     lines = [
         "",
         f"fed      {fed} lines in {outcome.elapsed:.1f} s (log rotated once: {LOG_NAME} -> {ROTATED_NAME})",
@@ -549,10 +559,12 @@ def report(outcome: Outcome, paths: DemoPaths, out: TextIO) -> list[str]:
         f"inputs   {inbox}/ ({LOG_NAME}, {ROTATED_NAME})",
         f"daemon   {_shown(paths.config)} (config), {_shown(paths.daemon_log)} (its log)",
         "",
-        "next:",
-        f"  .venv/bin/streamtag replay {inbox} --output {replayed}",
-        f"  .venv/bin/streamtag compare {output} {replayed}",
-        f"  .venv/bin/streamtag review {review} --out {reviewed}",
+        "next: tag the inbox again, compare, review the doubtful lines",
+        f"  .venv/bin/streamtag replay {inbox} --threshold {threshold:g}{model_option} --output {replayed}",
+        f"  .venv/bin/streamtag compare {output} {replayed} --allow-mismatch",
+        f"    (the daemon named lines read before the rotation {LOG_NAME}, the replay",
+        f"    calls them {ROTATED_NAME}: compare pairs up the lines whose names agree)",
+        f"  .venv/bin/streamtag review {review}{model_option} --out {reviewed}",
     ]
     out.write("\n".join(lines) + "\n")
     out.flush()
@@ -580,13 +592,16 @@ def main(argv: list[str] | None = None, out: TextIO | None = None) -> int:
         model = str(Path(args.model).absolute()) if args.model else None
         paths = prepare_folder(Path(args.dir))
         outcome = run_demo(paths, args.seconds, args.rate, args.seed, args.threshold, model, out)
-        problems = report(outcome, paths, out)
+        problems = report(outcome, paths, args.threshold, model, out)
     except StreamtagError as error:
         print(f"streamtag demo: {error}", file=sys.stderr)
         return error.exit_code
     except OSError as error:
         print(f"streamtag demo: {error.strerror or error}: {error.filename or ''}".rstrip(": "), file=sys.stderr)
         return 1
+    except KeyboardInterrupt:       # Ctrl-C before the daemon was started: nothing to stop
+        print("streamtag demo: interrupted", file=sys.stderr)
+        return 130
     if problems:
         print(f"streamtag demo: {problems[0]}", file=sys.stderr)
         return 1
