@@ -297,7 +297,7 @@ def fit_marked(screen: Screen, text: str, spans: list[tuple[int, int, str]], wid
     """
     text = text.replace("\t", " ")      # same length: offsets stay right; a tab would show as '\ufffd'
     first = min((start for start, _, _ in spans), default=0)
-    if first > width // 3:
+    if first > width // 2:
         skip = first - LEAD_COLUMNS
         text = "…" + text[skip + 1:]
         spans = [(start - skip, end - skip, label) for start, end, label in spans]
@@ -440,77 +440,114 @@ class Outcome:
     elapsed: float
 
 
-def run_demo(paths: DemoPaths, seconds: float, rate: float, seed: int, threshold: float,
-             model: str | None, out: TextIO) -> Outcome:
-    schedule = feed_schedule(seconds, rate, seed)
-    stream = [line["text"] for line in generate_stream(sum(schedule), seed)]
-    write_config(paths, threshold, model)
-    live, colour = wants_live_screen(out), wants_colour(out)
-    screen_marks = Screen(out, colour, list(LABELS))
-    width = max(40, min(shutil.get_terminal_size((80, 24)).columns, 120) - 1) if live else 79
-    stop = _StopFlag()
-    previous = {signum: signal.signal(signum, stop) for signum in (signal.SIGINT, signal.SIGTERM)}
-    feeder = Feeder(paths.inbox)
-    daemon = start_daemon(paths, model)
-    tail, tally, fed_texts = JsonLinesTail(paths.output), Tally(), Counter()
-    live_screen = LiveScreen(out) if live else None
-    out.write(f"streamtag demo: feeding about {rate:g} lines/s for {seconds:g} s (Ctrl-C stops early)\n"
-              f"folder {paths.root}\n")
-    out.flush()
-    started = time.monotonic()
-    next_refresh, next_progress = 0.0, PROGRESS_SECONDS
-    position = tick = 0
-    try:
-        while tick < len(schedule) and not stop.set:
+class _DemoRun:
+    """One run: the feeder, the daemon, and what is shown. `run()` feeds, shows, winds down."""
+
+    def __init__(self, paths: DemoPaths, seconds: float, rate: float, seed: int, threshold: float,
+                 model: str | None, out: TextIO) -> None:
+        self.paths, self.seconds, self.threshold, self.model, self.out = paths, seconds, threshold, model, out
+        self.schedule = feed_schedule(seconds, rate, seed)
+        self.stream = [line["text"] for line in generate_stream(sum(self.schedule), seed)]
+        live = wants_live_screen(out)
+        self.live_screen = LiveScreen(out) if live else None
+        self.marks = Screen(out, wants_colour(out), list(LABELS))
+        self.width = max(40, min(shutil.get_terminal_size((80, 24)).columns, 120) - 1) if live else 79
+        self.tail, self.tally, self.fed_texts = JsonLinesTail(paths.output), Tally(), Counter()
+        self.stop = _StopFlag()
+        self.tick = self.position = 0
+        self.next_refresh, self.next_progress = 0.0, PROGRESS_SECONDS
+
+    def run(self) -> Outcome:
+        write_config(self.paths, self.threshold, self.model)
+        self.feeder = Feeder(self.paths.inbox)
+        daemon = start_daemon(self.paths, self.model)
+        previous = {signum: signal.signal(signum, self.stop) for signum in (signal.SIGINT, signal.SIGTERM)}
+        self.out.write(f"streamtag demo: feeding about {self._rate_text()} for {self.seconds:g} s "
+                       f"(Ctrl-C stops early)\nfolder {self.paths.root}\n")
+        self.out.flush()
+        try:
+            elapsed = self._feed(daemon)
+            self._catch_up(daemon, elapsed)
+        finally:
+            exit_code = stop_daemon(daemon)
+            for signum, handler in previous.items():
+                signal.signal(signum, handler)
+        self.tally.add(self.tail.read())
+        self.tally.read_stats(self.paths.stats)
+        return Outcome(self.fed_texts, self.tally, exit_code, self.stop.set, elapsed)
+
+    def _rate_text(self) -> str:
+        return f"{sum(self.schedule) / max(self.seconds, 1e-9):.0f} lines/s"
+
+    def _feed(self, daemon: subprocess.Popen) -> float:
+        """Feed on schedule until its end or a stop request; returns the seconds fed."""
+        started = time.monotonic()
+        while self.tick < len(self.schedule) and not self.stop.set:
             elapsed = time.monotonic() - started
-            while tick < len(schedule) and tick * TICK_SECONDS <= elapsed:   # catch up after a slow tick
-                batch = stream[position:position + schedule[tick]]
-                feeder.write(batch)
-                fed_texts.update(batch)
-                position += len(batch)
-                tick += 1
-            if feeder.rotated_at is None and elapsed >= seconds / 2:
-                feeder.rotate(elapsed)
-            elif feeder.reopen_at is not None and elapsed >= feeder.reopen_at:
-                feeder.reopen()
+            self._write_due(elapsed)
+            self._rotate_if_due(elapsed)
             if daemon.poll() is not None:
                 raise StreamtagError(f"the daemon stopped early (exit {daemon.returncode}): "
-                                     f"{_last_log_line(paths.daemon_log) or 'see ' + str(paths.daemon_log)}")
-            tally.add(tail.read())
-            if elapsed >= next_refresh:
-                tally.read_stats(paths.stats)
-                next_refresh = elapsed + REFRESH_SECONDS
-                if live_screen:
-                    live_screen.draw(summary_lines(tally, feeder, elapsed, seconds, threshold, screen_marks, width))
-            if not live_screen and elapsed >= next_progress:
-                next_progress = elapsed + PROGRESS_SECONDS
-                out.write(progress_line(tally, feeder, elapsed) + "\n")
-                if tally.last:
-                    record = tally.last[-1]
-                    out.write("  " + fit_marked(screen_marks, record["text"], _spans_of(record), width - 2) + "\n")
-                out.flush()
-            time.sleep(max(0.0, started + (tick * TICK_SECONDS) - time.monotonic()))
-        if feeder.reopen_at is not None:
-            feeder.reopen()
-        feeder.close()
-        elapsed = time.monotonic() - started
-        out.write(("stopped early" if stop.set else "feeding done") + f" after {elapsed:.1f} s; "
-                  f"waiting for the daemon to tag the last lines ...\n")
-        out.flush()
+                                     f"{_last_log_line(self.paths.daemon_log) or 'see ' + str(self.paths.daemon_log)}")
+            self.tally.add(self.tail.read())
+            self._show(elapsed)
+            time.sleep(max(0.0, started + self.tick * TICK_SECONDS - time.monotonic()))
+        if self.feeder.reopen_at is not None:
+            self.feeder.reopen()
+        self.feeder.close()
+        return time.monotonic() - started
+
+    def _write_due(self, elapsed: float) -> None:
+        # Every tick whose time has come (more than one after a slow pass), so the rate holds.
+        while self.tick < len(self.schedule) and self.tick * TICK_SECONDS <= elapsed:
+            batch = self.stream[self.position:self.position + self.schedule[self.tick]]
+            self.feeder.write(batch)
+            self.fed_texts.update(batch)
+            self.position += len(batch)
+            self.tick += 1
+
+    def _rotate_if_due(self, elapsed: float) -> None:
+        if self.feeder.rotated_at is None and elapsed >= self.seconds / 2:
+            self.feeder.rotate(elapsed)
+        elif self.feeder.reopen_at is not None and elapsed >= self.feeder.reopen_at:
+            self.feeder.reopen()
+
+    def _show(self, elapsed: float) -> None:
+        if elapsed >= self.next_refresh:
+            self.tally.read_stats(self.paths.stats)
+            self.next_refresh = elapsed + REFRESH_SECONDS
+            if self.live_screen:
+                self._draw(elapsed)
+        if not self.live_screen and elapsed >= self.next_progress:
+            self.next_progress = elapsed + PROGRESS_SECONDS
+            self.out.write(progress_line(self.tally, self.feeder, elapsed) + "\n")
+            if self.tally.last:
+                record = self.tally.last[-1]
+                self.out.write("  " + fit_marked(self.marks, record["text"], _spans_of(record), self.width - 2) + "\n")
+            self.out.flush()
+
+    def _draw(self, elapsed: float) -> None:
+        self.live_screen.draw(summary_lines(self.tally, self.feeder, elapsed, self.seconds, self.threshold,
+                                            self.marks, self.width))
+
+    def _catch_up(self, daemon: subprocess.Popen, elapsed: float) -> None:
+        """Wait (bounded) until the daemon has written a record for every fed line."""
+        self.out.write(("stopped early" if self.stop.set else "feeding done") + f" after {elapsed:.1f} s; "
+                       "waiting for the daemon to tag the last lines ...\n")
+        self.out.flush()
         deadline = time.monotonic() + CATCH_UP_SECONDS
-        while tally.tagged < feeder.fed and time.monotonic() < deadline and daemon.poll() is None:
+        while self.tally.tagged < self.feeder.fed and time.monotonic() < deadline and daemon.poll() is None:
             time.sleep(TICK_SECONDS)
-            tally.add(tail.read())
-        tally.read_stats(paths.stats)
-        if live_screen:
-            live_screen.draw(summary_lines(tally, feeder, elapsed, seconds, threshold, screen_marks, width))
-    finally:
-        exit_code = stop_daemon(daemon)
-        for signum, handler in previous.items():
-            signal.signal(signum, handler)
-    tally.add(tail.read())
-    tally.read_stats(paths.stats)
-    return Outcome(fed_texts, tally, exit_code, stop.set, elapsed)
+            self.tally.add(self.tail.read())
+        self.tally.read_stats(self.paths.stats)
+        if self.live_screen:
+            self._draw(elapsed)
+
+
+def run_demo(paths: DemoPaths, seconds: float, rate: float, seed: int, threshold: float,
+             model: str | None, out: TextIO) -> Outcome:
+    """Feed, show, stop the daemon; the caller checks and reports the outcome."""
+    return _DemoRun(paths, seconds, rate, seed, threshold, model, out).run()
 
 
 def _shown(path: Path) -> str:
