@@ -205,37 +205,48 @@ _FAST_HOST = (
     # e-mail address nor the scheme of a URL.
     rf"(?=[^\W\d])(?![vV]\d){_NAME}(?:\.{_NAME})++(?![+\-]|{_LOCAL_PART_OR_SCHEME_GOES_ON})"
 )
+_FAST_IDENT = (
+    # Name starting with an ASCII letter or '_', with a digit or underscore after its leading
+    # letters (so never a plain word) and a letter past 'f' or an underscore (so never a hex id,
+    # MAC or UUID): ID47, web-03, user_id.
+    r"(?=[A-Za-z_])(?=[A-Za-z\-]*+[0-9_])(?=[0-9A-Fa-f\-]*+[G-Zg-z_])(?![vV][0-9])"
+    rf"{_NAME}(?:['\u2019]{_NAME})*+"
+    # not a dotted host, an e-mail local part, a URL scheme, an IPv6/drive prefix
+    rf"(?![.+\-:'\u2019@]|{_LOCAL_PART_OR_SCHEME_GOES_ON})"
+)
 
 # The full rules in priority order: the first alternative that matches at a position wins. Each
-# names the characters it can start with: D a decimal digit, L another word character (letter,
-# underscore), O anything else. The pattern first dispatches on the class of the first character
-# and then tries, in this same order, only the rules that can start there, so a token does not pay
-# for a dozen rules that could never match it. Order within each class is unchanged.
+# names the characters it can start with: W a word character, O anything else. The pattern first
+# dispatches on the class of the first character and then tries, in this same order, only the
+# rules that can start there. (A finer split, digits apart from letters, was tried: it saves a few
+# quick failures but duplicates more groups, and every match object carries all group marks; with
+# 31 groups it outgrew Python's small-object allocator and cost more than it saved.)
 _RULES = (
-    ("url", _URL, "L"),
-    ("email", _EMAIL, "DL"),
-    ("uuid", _UUID, "DL"),
-    ("timestamp", _TIMESTAMP, "D"),
-    ("ipv4", _IPV4, "D"),
-    ("ipv6", _IPV6, "DLO"),
-    ("mac", _MAC, "DL"),
-    ("path", _PATH, "LO"),
-    ("version", _VERSION, "DL"),
-    ("hex", _HEXID, "DL"),
-    ("number", _NUMBER, "DO"),
-    ("word", _WORD, "L"),
-    ("host", _HOST, "DL"),
-    ("ident", _IDENT, "DL"),
+    ("url", _URL, "W"),
+    ("email", _EMAIL, "W"),
+    ("uuid", _UUID, "W"),
+    ("timestamp", _TIMESTAMP, "W"),
+    ("ipv4", _IPV4, "W"),
+    ("ipv6", _IPV6, "WO"),
+    ("mac", _MAC, "W"),
+    ("path", _PATH, "WO"),
+    ("version", _VERSION, "W"),
+    ("hex", _HEXID, "W"),
+    ("number", _NUMBER, "WO"),
+    ("word", _WORD, "W"),
+    ("host", _HOST, "W"),
+    ("ident", _IDENT, "W"),
     ("punct", _PUNCT, "O"),
     ("symbol", r"\S", "O"),  # anything else that is not white space, one character at a time
 )
-_FIRST_CHAR = {"D": r"(?=\d)", "L": r"(?=[^\W\d])", "O": ""}  # O last: no guard needed
+_FIRST_CHAR = {"W": r"(?=\w)", "O": ""}  # O last: no guard needed
 
 # A kind may appear several times (fast path, and once per first-character class); the group name
 # is the kind plus its index, and m.lastindex maps back to the kind.
 _ALTERNATIVES = (
-    [("word", _FAST_WORD), ("punct", _FAST_PUNCT), ("number", _FAST_NUMBER), ("host", _FAST_HOST)],
-    *[[(kind, body) for kind, body, starts in _RULES if cls in starts] for cls in "DLO"],
+    [("word", _FAST_WORD), ("punct", _FAST_PUNCT), ("number", _FAST_NUMBER), ("host", _FAST_HOST),
+     ("ident", _FAST_IDENT)],
+    *[[(kind, body) for kind, body, starts in _RULES if cls in starts] for cls in "WO"],
 )
 
 KINDS: tuple[str, ...] = (
