@@ -28,7 +28,7 @@ import argparse
 import html
 import os
 import sys
-from collections import Counter
+from collections import Counter, deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -254,8 +254,7 @@ EXAMPLE_KINDS = ("added", "removed", "relabelled", "moved", "now sent to review"
 
 def compare(old: list[LineRecord], new: list[LineRecord], examples: int = 5) -> Comparison:
     mode = key_mode(old, new)
-    old_keyed, repeated_old = _keyed(old, mode)
-    new_keyed, repeated_new = _keyed(new, mode)
+    repeated_old, repeated_new = _keyed(old, mode)[1], _keyed(new, mode)[1]
     result = Comparison(key_mode=mode, repeated_old=repeated_old, repeated_new=repeated_new)
     result.models_old = {r.model for r in old if r.model}
     result.models_new = {r.model for r in new if r.model}
@@ -270,6 +269,9 @@ def compare(old: list[LineRecord], new: list[LineRecord], examples: int = 5) -> 
                 key, record_old.text if record_old else None, record_new.text if record_new else None,
                 record_old.spans if record_old else (), new_spans, text))
 
+    pairs, old_left, new_left = pair_lines(old, new, mode)
+    old_keyed, _ = _keyed(old_left, mode)
+    new_keyed, _ = _keyed(new_left, mode)
     for key, record in old_keyed.items():
         if key not in new_keyed:
             result.only_old += 1
@@ -279,14 +281,49 @@ def compare(old: list[LineRecord], new: list[LineRecord], examples: int = 5) -> 
             result.only_new += 1
             note("only in NEW", key, None, record, "")
     for key in sorted(old_keyed.keys() & new_keyed.keys(), key=_sortable):
-        before, after = old_keyed[key], new_keyed[key]
-        if before.text != after.text:
-            result.text_differs += 1
-            note("text differs", key, before, after, "", new_spans_apply=False)
-            continue
+        result.text_differs += 1
+        note("text differs", key, old_keyed[key], new_keyed[key], "", new_spans_apply=False)
+    for key, before, after in sorted(pairs, key=lambda item: _sortable(item[0])):
         result.lines_compared += 1
         _count_line(result, key, before, after, note)
     return result
+
+
+def pair_lines(old: list[LineRecord], new: list[LineRecord], mode: str):
+    """Pair the records of the same input line: ([(key, old, new)], OLD left over, NEW left over).
+
+    First by (source, position, text); then what is left by (folder, position, text). A log rotated
+    by renaming keeps its bytes and offsets (rename rotation, common practice), so the daemon may
+    have named a line app.log while a later replay of the folder calls it app.log.1.
+    """
+    def position(record: LineRecord):
+        return record.offset if mode == "offset" else record.line
+
+    def exact(record: LineRecord):
+        return (record.source, position(record), record.text)
+
+    def same_folder(record: LineRecord):
+        return (os.path.dirname(record.source or ""), position(record), record.text)
+
+    pairs, occurrence = [], Counter()
+    for key_of in (exact, same_folder):
+        waiting: dict = {}
+        for record in old:
+            waiting.setdefault(key_of(record), deque()).append(record)
+        unmatched_new = []
+        for record in new:
+            queue = waiting.get(key_of(record))
+            if not queue:
+                unmatched_new.append(record)
+                continue
+            before = queue.popleft()
+            where = (before.source, position(before))
+            pairs.append((where + (occurrence[where],), before, record))
+            occurrence[where] += 1
+        matched = {id(before) for _, before, _ in pairs}
+        old = [record for record in old if id(record) not in matched]
+        new = unmatched_new
+    return pairs, old, new
 
 
 def _sortable(key: tuple) -> tuple:

@@ -112,6 +112,20 @@ def test_records_without_offsets_are_matched_by_line(tmp_path):
     assert result.per_label["account"]["removed"] == 1 and result.per_label["host"]["added"] == 1
 
 
+def test_lines_renamed_by_rotation_are_paired_by_folder_offset_and_text(tmp_path):
+    # Rename rotation (common practice): app.log becomes app.log.1 with the same bytes, and a new
+    # app.log starts at offset 0. The daemon read line one as app.log; a replay calls it app.log.1.
+    old = [record(0, "first on vault-02", [(9, 17, "host")], source="/logs/app.log"),
+           record(0, "new file line", [], source="/logs/app.log")]
+    new = [record(0, "new file line", [], source="/logs/app.log"),
+           record(0, "first on vault-02", [(9, 17, "service")], source="/logs/app.log.1")]
+    result = compare.compare(compare.read_records(write_jsonl(tmp_path / "a", old)),
+                             compare.read_records(write_jsonl(tmp_path / "b", new)))
+    assert not result.mismatched
+    assert result.lines_compared == 2 and result.text_differs == 0
+    assert result.per_label["host"]["relabelled_from"] == 1
+
+
 # -- mismatched inputs ---------------------------------------------------------------------------------------
 
 

@@ -598,9 +598,7 @@ def report(outcome: Outcome, paths: DemoPaths, threshold: float, model: str | No
         "",
         "next: tag the inbox again, compare, review the doubtful lines",
         f"  .venv/bin/streamtag replay {inbox} --threshold {threshold:g}{model_option} --output {replayed}",
-        f"  .venv/bin/streamtag compare {output} {replayed} --allow-mismatch",
-        f"    (the daemon named lines read before the rotation {LOG_NAME}, the replay",
-        f"    calls them {ROTATED_NAME}: compare pairs up the lines whose names agree)",
+        f"  .venv/bin/streamtag compare {output} {replayed}",
         f"  .venv/bin/streamtag review {review}{model_option} --out {reviewed}",
     ]
     out.write("\n".join(lines) + "\n")
