@@ -578,6 +578,17 @@ def test_every_code_point_alone_is_one_token_or_white_space():
         assert tokens.starts == [2 * j for j, c in enumerate(chunk) if not c.isspace()]
 
 
+@pytest.mark.parametrize("n_tokens", [4095, 4096, 4097, 8192, 20001])
+def test_long_lines_across_match_chunks(n_tokens):
+    # Matches are gathered in chunks of 4096; token counts around and past that boundary must keep
+    # the contract and lose nothing (each "ab," is a word and a comma).
+    line = ("ab," * (n_tokens // 2 + 1))[: 3 * (n_tokens // 2) + (n_tokens % 2) * 2]
+    tokens = tokenize(line)
+    check_invariants(line, tokens)
+    assert len(tokens.texts) == n_tokens
+    assert tokens.texts[-1] == ("ab" if n_tokens % 2 else ",")
+
+
 def test_bad_input_is_a_data_error():
     # Bad input gives a one-line StreamtagError, never a traceback from deep inside.
     with pytest.raises(DataError):
