@@ -53,7 +53,7 @@ class WatchConfig:
     review_threshold: float = 0.5  # lines with confidence below this also go to review
     file_mode: int = 0o600  # mode of files the daemon creates
     batch_max_lines: int = 512
-    batch_max_wait_ms: int = 200  # a partial batch is written after this wait
+    batch_max_wait_ms: int = 0  # how long a partial batch waits for more lines (0: group commit)
     state_dir: str = "streamtag-state"
     stats_interval_seconds: float = 60.0
     config_path: str | None = None  # the file these values came from (None: built-in defaults)

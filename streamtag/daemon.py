@@ -53,7 +53,7 @@ WAIT_SLICE_SECONDS = 0.1  # longest sleep between looks at the signal flags
 BINARY_SHARE = 0.3
 BINARY_MIN_CHARS = 16  # a shorter line is too little evidence: a few broken bytes are still text
 # Tagging a sample proves a new model's labels and feature spec work before it is swapped in.
-MODEL_PROBE_LINE = "sshd[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
+MODEL_PROBE_LINE = "gatewarden[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
 
 Log = Callable[[str], None]
 

@@ -29,11 +29,11 @@ FEATURES_TOML = REPO / "config" / "features.toml"
 
 # Invented log lines (fictional hosts, accounts and addresses from documentation ranges).
 SAMPLE_LINES = [
-    "sshd[311]: login failed for user kestrel from 192.0.2.14 port 2201",
-    "relay-07 postfix/smtpd[88]: connect from mailer.example.invalid[198.51.100.3]",
-    "kernel: eth0 link up on host brindle-04",
+    "gatewarden[311]: login failed for user kestrel from 192.0.2.14 port 2201",
+    "relay-07 mailferry[88]: connect from mailer.example.invalid[198.51.100.3]",
+    "netwatch: port nic0 link up on host brindle-04",
     "app[2041]: user marigold.fenn opened /srv/data/reports/q3.csv",
-    "cron[77]: job backup-nightly finished with code E4012 on vault-02",
+    "tasker[77]: job backup-nightly finished with code E4012 on vault-02",
 ]
 
 

@@ -242,6 +242,7 @@ def test_exactly_once_across_sigkill_and_rotation(tmp_path, model_paths):
         kills += 1
     writer_thread.join()
     daemon = DaemonProcess(config, log_path).start()
+    wait_until(lambda: daemon.log_text().count("watching ") > kills, timeout=60, what="last start")
     wait_until(lambda: count_lines(output) >= total, timeout=120, what="all lines in the output")
     assert daemon.stop() == 0, daemon.log_text()[-2000:]
 
@@ -284,6 +285,7 @@ def test_sigterm_finishes_the_batch_and_checkpoints(tmp_path, model_paths):
     assert "stopped: every line read is written and checkpointed" in daemon.log_text()
     # A restart continues where it stopped: all 4000 lines exactly once.
     daemon = DaemonProcess(config, tmp_path / "daemon.log").start()
+    wait_until(lambda: daemon.log_text().count("watching ") == 2, what="restart")
     wait_until(lambda: count_lines(output) >= 4000, what="the rest after restart")
     assert daemon.stop() == 0
     assert [line_id(r) for r in read_records(output)] == list(range(4000))

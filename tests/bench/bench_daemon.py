@@ -86,7 +86,7 @@ def final_stats(directory: Path) -> dict:
 
 def bench_throughput(work: Path, model: Path, n_lines: int, batch: int) -> dict:
     directory = work / "throughput"
-    source, config, output = setup(directory, model, batch={"max_lines": batch, "max_wait_ms": 50},
+    source, config, output = setup(directory, model, batch={"max_lines": batch, "max_wait_ms": 0},
                                    state={"stats_interval_seconds": 86400})
     write_lines(source, demo_lines(n_lines))
     daemon = DaemonProcess(config, directory / "daemon.log").start()
@@ -141,7 +141,7 @@ def bench_latency(work: Path, model: Path, rate: int, seconds: float, max_wait_m
 
 def bench_memory(work: Path, model: Path, n_lines: int) -> dict:
     directory = work / "memory"
-    source, config, output = setup(directory, model, batch={"max_lines": 512, "max_wait_ms": 50},
+    source, config, output = setup(directory, model, batch={"max_lines": 512, "max_wait_ms": 0},
                                    state={"stats_interval_seconds": 30})
     # Distinct lines (numbered) so caches keyed by token text see an endless stream of new tokens.
     base = demo_lines(20_000)
@@ -233,7 +233,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--batch", type=int, default=1000)
     parser.add_argument("--rate", type=int, default=2000, help="lines/s for the latency run")
     parser.add_argument("--seconds", type=float, default=20.0, help="length of the latency run")
-    parser.add_argument("--max-wait-ms", type=int, default=50)
+    parser.add_argument("--max-wait-ms", type=int, default=0)
     parser.add_argument("--rss-lines", type=int, default=1_000_000, help="lines for the memory run")
     parser.add_argument("--only", choices=["throughput", "latency", "memory", "profile"], action="append")
     args = parser.parse_args(argv)
