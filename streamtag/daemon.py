@@ -380,6 +380,14 @@ class Daemon:
     # -- start and stop ------------------------------------------------------------------------
 
     def _run(self) -> int:
+        # Handlers first: a SIGTERM during a slow start (model load) then means "stop cleanly".
+        previous_handlers = self._install_signal_handlers()
+        try:
+            return self._start_and_loop()
+        finally:
+            self._restore_signal_handlers(previous_handlers)
+
+    def _start_and_loop(self) -> int:
         config = self.config
         if not config.inputs:
             raise ConfigError(f"{config.config_path or 'command line'}: inputs.paths: no input given (nothing to watch)")
@@ -395,7 +403,28 @@ class Daemon:
             OutputFile(config.output_path, config.file_mode, self._write, self._fsync),
             OutputFile(config.review_path, config.file_mode, self._write, self._fsync),
         )
-        self.follower = Follower(
+        try:
+            self.follower = self._make_follower(state)
+        except BaseException:
+            self.writer.close()
+            raise
+        watcher = self._start_watcher()
+        self.log(
+            f"watching {len(config.inputs)} input pattern(s); model {self.tagger.model_id}; "
+            f"output {config.output_path}; review {config.review_path} below {config.review_threshold:g}"
+            + ("; resumed from checkpoint" if state is not None else "")
+        )
+        try:
+            return self._loop()
+        finally:
+            if watcher is not None:
+                watcher.stop()
+            self.follower.close()
+            self.writer.close()
+
+    def _make_follower(self, state: State | None) -> Follower:
+        config = self.config
+        return Follower(
             list(config.inputs),
             start_at=config.start_at,
             max_line_bytes=config.max_line_bytes,
@@ -406,21 +435,6 @@ class Daemon:
             # A directory or glob input may cover our own files: tagging them would feed back.
             exclude=[config.output_path, config.review_path, self.state_path, self.stats_path],
         )
-        watcher = self._start_watcher()
-        previous_handlers = self._install_signal_handlers()
-        self.log(
-            f"watching {len(config.inputs)} input pattern(s); model {self.tagger.model_id}; "
-            f"output {config.output_path}; review {config.review_path} below {config.review_threshold:g}"
-            + ("; resumed from checkpoint" if state is not None else "")
-        )
-        try:
-            return self._loop()
-        finally:
-            self._restore_signal_handlers(previous_handlers)
-            if watcher is not None:
-                watcher.stop()
-            self.follower.close()
-            self.writer.close()
 
     def _start_watcher(self) -> ChangeWatcher | None:
         try:
