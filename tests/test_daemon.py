@@ -612,6 +612,20 @@ def test_configured_file_mode(tmp_path, model_paths):
     assert stat.S_IMODE(os.stat(tmp_path / "out" / "tagged.jsonl").st_mode) == 0o640  # chmod(2)
 
 
+def test_corrupt_state_file_is_refused_with_one_line(tmp_path, model_paths):
+    source = tmp_path / "app.log"
+    append_lines(source, numbered("C", 0, 5))
+    config = write_config(tmp_path, [str(source)], model_paths[0][0])
+    (tmp_path / "state").mkdir()
+    (tmp_path / "state" / "state.json").write_bytes(b'{"version": 1, "files": {')  # cut short
+    daemon = InProcessDaemon(config).start()
+    daemon.thread.join(60)
+    # Guessing positions could lose or repeat lines: refuse, say which file, touch nothing.
+    assert daemon.exit_code == 1  # DataError: the project's exit code 1
+    assert len(daemon.logs) == 1 and str(tmp_path / "state" / "state.json") in daemon.logs[0]
+    assert not (tmp_path / "out" / "tagged.jsonl").exists()
+
+
 def test_missing_model_is_one_line_and_exit_1(tmp_path):
     source = tmp_path / "app.log"
     append_lines(source, ["x 000000"])
