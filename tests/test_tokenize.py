@@ -12,6 +12,7 @@ import gc
 import ipaddress
 import sys
 import time
+import unicodedata
 import urllib.parse
 import uuid
 from pathlib import Path
@@ -535,6 +536,8 @@ def test_words_unicode_and_apostrophes():
     # Words are letters of any script, inner apostrophes allowed (common practice).
     for text in ("failed", "don't", "café", "naïve", "Ärger", "ünïcödé", "नमस्ते", "日本語", "cafe\u0301"):
         assert only_token(text) == (text, "word")
+        # unicodedata: every character is a letter (L*) or a combining mark (M*), or the apostrophe
+        assert all(unicodedata.category(c)[0] in "LM" for c in text.replace("'", ""))
     assert pairs("'su root'") == [("'", "punct"), ("su", "word"), ("root", "word"), ("'", "punct")]
     assert only_token("user_id") == ("user_id", "ident")
     assert only_token("ID47") == ("ID47", "ident")
@@ -549,6 +552,8 @@ def test_control_characters_are_symbol_tokens():
     # Control characters that are not white space (NUL, ESC, DEL, C1) become one-character symbol
     # tokens (unicodedata: category Cc); white-space controls (str.isspace) separate tokens.
     line = "a\x00b\x1b[0m red\x7f\x85c\x1fd\x9b"
+    assert all(unicodedata.category(c) == "Cc" and not c.isspace() for c in "\x00\x1b\x7f\x9b")
+    assert "\x85".isspace() and "\x1f".isspace()  # NEL and unit separator count as white space
     tokens = tokenize(line)
     check_invariants(line, tokens)
     assert pairs(line) == [
@@ -565,6 +570,7 @@ def test_lone_surrogates_do_not_crash():
     assert tokens.kinds == ["word", "symbol", "symbol", "word"]
 
 
+@pytest.mark.slow
 def test_every_code_point_alone_is_one_token_or_white_space():
     # Python's str.isspace defines white space; every other code point (surrogates excluded) must
     # come out as exactly one one-character token, so no rule hides white space or drops a character.
@@ -590,9 +596,10 @@ def test_long_lines_across_match_chunks(n_tokens):
 
 
 def test_bad_input_is_a_data_error():
-    # Bad input gives a one-line StreamtagError, never a traceback from deep inside.
-    with pytest.raises(DataError):
+    # DEVELOPERS.md ground rules: bad input raises a StreamtagError subclass with a one-line message.
+    with pytest.raises(DataError) as error:
         tokenize(b"bytes, not str")
+    assert "\n" not in str(error.value)
     with pytest.raises(DataError):
         token_kind("")
     assert tokenize("") == TokenList([], [], [], [])
@@ -600,8 +607,8 @@ def test_bad_input_is_a_data_error():
 
 
 def test_token_kind_matches_tokenize_and_handles_composites():
-    # token_kind of a token tokenize produced is that token's kind; a composite takes the kind of
-    # its longest piece.
+    # DEVELOPERS.md: token_kind gives the kind of an already-split token, so it must agree with
+    # tokenize on every token tokenize produced; a composite takes the kind of its longest piece.
     for line in SAMPLE.read_text(encoding="utf-8").splitlines()[:300]:
         tokens = tokenize(line)
         for text, kind in zip(tokens.texts, tokens.kinds):
@@ -611,6 +618,7 @@ def test_token_kind_matches_tokenize_and_handles_composites():
 
 
 def test_kinds_list():
+    # DEVELOPERS.md (tokenize.py contract) names these kinds.
     assert len(set(KINDS)) == len(KINDS)
     assert {"word", "number", "ipv4", "ipv6", "url", "email", "path", "host", "uuid", "hex", "timestamp",
             "version", "punct", "symbol"} <= set(KINDS)
@@ -643,14 +651,15 @@ LOG_FRAGMENTS = [
 @settings(max_examples=400)
 @given(st.text())
 def test_property_arbitrary_text(line):
-    # Hypothesis default text includes control characters and all planes except surrogates.
+    # The contract in DEVELOPERS.md (check_invariants) on hypothesis' default text, which includes
+    # control characters and all planes except surrogates.
     check_invariants(line, tokenize(line))
 
 
 @settings(max_examples=400)
 @given(st.lists(st.sampled_from(LOG_FRAGMENTS), max_size=40).map("".join))
 def test_property_log_like_text(line):
-    # Fragments that trigger every rule, glued in random order.
+    # The contract in DEVELOPERS.md on fragments that trigger every rule, glued in random order.
     check_invariants(line, tokenize(line))
 
 
@@ -712,6 +721,7 @@ def test_ratio_check_catches_quadratic_cost():
     assert _cost_ratio("a.", quadratic) > LINEAR_RATIO_LIMIT
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("motif", ADVERSARIAL_MOTIFS)
 def test_linear_time_on_adversarial_lines(motif):
     # A backtracking pattern that is quadratic on some input costs 100x for 10x the length; a
@@ -720,6 +730,7 @@ def test_linear_time_on_adversarial_lines(motif):
     assert ratio < LINEAR_RATIO_LIMIT, f"{motif!r}: 100k chars cost {ratio:.1f}x 10k chars"
 
 
+@pytest.mark.slow
 def test_linear_time_on_mixed_adversarial_line():
     # All motifs interleaved: rules that fail late at many start positions would show here.
     ratio = _cost_ratio("".join(ADVERSARIAL_MOTIFS))
@@ -764,4 +775,5 @@ def test_fast_paths_change_nothing_on_sample_lines():
 @settings(max_examples=1000)
 @given(st.lists(st.sampled_from(LOG_FRAGMENTS + FAST_PATH_EDGES), max_size=30).map("".join))
 def test_fast_paths_change_nothing_on_log_like_text(line):
+    # Same reference as above, on hypothesis-built text around the fast paths' edges.
     assert _tokens(line) == _tokens_without_fast_paths(line)
