@@ -1,20 +1,27 @@
-"""Split one log line into tokens with character offsets and a coarse kind per token.
+r"""Split one log line into tokens with character offsets and a coarse kind per token.
 
-One compiled pattern of named alternatives, tried in priority order at each position by ``finditer``.
-The name of the alternative that matched is the token's kind (see ``KINDS``).
+One compiled pattern of named alternatives, tried in priority order at each position by ``finditer``;
+the alternative that matched gives the token's kind (see ``KINDS``). The pattern has three parts:
+fast paths for plain words, punctuation, numbers, dotted names and identifiers, which accept only
+what no rule of higher priority could claim; then the full rules in priority order, split by whether
+the token starts with a word character. A test checks that the fast paths change no token.
 
 Guarantees (checked by the tests):
 - ``texts[i] == line[starts[i]:ends[i]]``; tokens are in order, never overlap and never contain a
   character for which ``str.isspace()`` is true.
-- Every other character is inside exactly one token. Characters no alternative claims (control
-  characters such as NUL or ESC, a byte-order mark, emoji, lone surrogates, stray combining marks)
-  become one-character tokens of kind ``"symbol"``: never dropped, never glued to a neighbour.
+- Every other character is inside exactly one token. Characters no rule claims (control characters
+  such as NUL or ESC, a byte-order mark, emoji, lone surrogates, a combining mark with no letter
+  before it) become one-character tokens of kind ``"symbol"``: never dropped, never glued to a
+  neighbour. White-space controls (tab, NEL, U+001C..U+001F) separate tokens like a space.
 - Linear time in the line's length. Every repetition either runs over a class that the following
-  part cannot start with (so it never has to give characters back), or is bounded by the standard it
-  follows (IPv6 groups, URI scheme length, e-mail local part and labels). An alternative that scans a
-  long run and then fails is always followed, at the same position, by one that consumes that run, so
-  no run is rescanned from many start positions. ``tests/test_tokenize.py`` checks this with
-  adversarial lines.
+  part cannot start with, and is possessive or atomic so it never gives characters back, or is
+  bounded by the standard it follows (IPv6 groups, URI scheme length, e-mail local part and labels).
+  An alternative that scans a long run and then fails is always followed, at the same position, by
+  one that consumes that run, so no run is rescanned from many start positions.
+  ``tests/test_tokenize.py`` checks this with adversarial lines.
+
+Cost: about 7.7k machine instructions per token on service logs (callgrind), about 1.2-1.6 us per
+token on a 2 GHz core; a bare ``\w+|[^\w\s]`` finditer building the same four lists costs about 4k.
 """
 
 from __future__ import annotations
