@@ -121,7 +121,11 @@ _EMAIL = (
     rf"(?:(?:{_DOMAIN_LABEL}\.){{1,16}}{_LETTERS}[\w\-]{{0,62}}+|\[[0-9A-Za-z:.]{{2,45}}\])"
 )
 
-_UUID = rf"(?:[Uu][Rr][Nn]:[Uu][Uu][Ii][Dd]:)?{_HEX}{{8}}-{_HEX}{{4}}-{_HEX}{{4}}-{_HEX}{{4}}-{_HEX}{{12}}(?!{_NAME_GOES_ON})"
+_UUID = (
+    # RFC 4122 section 3: 8-4-4-4-12 hex digits, optionally as a urn:uuid: URN
+    rf"(?:[Uu][Rr][Nn]:[Uu][Uu][Ii][Dd]:)?"
+    rf"{_HEX}{{8}}-{_HEX}{{4}}-{_HEX}{{4}}-{_HEX}{{4}}-{_HEX}{{12}}(?!{_NAME_GOES_ON})"
+)
 
 _FRACTION = r"(?:[.,][0-9]{1,9})?"
 _OFFSET = r"(?:[Zz]|[+\-][0-2][0-9](?::?[0-5][0-9])?)?"
@@ -158,7 +162,11 @@ _PATH = (
 )
 
 _VERSION_SUFFIX = r"(?:[A-Za-z]++[0-9]*+)?(?:[\-+~][0-9A-Za-z]++(?:[.\-+][0-9A-Za-z]++){0,10})?"
-_VERSION = rf"(?:[vV][0-9]++(?:\.[0-9]++)*+|[0-9]++\.[0-9]++\.[0-9]++(?:\.[0-9]++)*+){_VERSION_SUFFIX}(?!{_NAME_GOES_ON})"
+_VERSION = (
+    # v1, v1.2.3, or three or more dotted numbers; then pre-release / build parts (SemVer 2.0.0)
+    r"(?:[vV][0-9]++(?:\.[0-9]++)*+|[0-9]++\.[0-9]++\.[0-9]++(?:\.[0-9]++)*+)"
+    rf"{_VERSION_SUFFIX}(?!{_NAME_GOES_ON})"
+)
 
 _HEXID = (
     rf"0[xX]{_HEX}++(?!{_NAME_GOES_ON})"
