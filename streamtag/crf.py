@@ -248,11 +248,11 @@ class _PackedForwardBackward(NamedTuple):
 
 
 def _forward_backward_packed(E: np.ndarray, pk: _Packing, trans, start, end,
-                             keep_pairs: bool = False) -> _PackedForwardBackward:
+                             keep_pairs: bool = False, Ep: np.ndarray | None = None) -> _PackedForwardBackward:
     trans = np.asarray(trans, dtype=np.float64)
     start = np.asarray(start, dtype=np.float64)
     end = np.asarray(end, dtype=np.float64)
-    Ep = pk.to_packed(E)
+    Ep = pk.to_packed(E) if Ep is None else Ep
     alpha = np.empty_like(Ep)
     beta = np.empty_like(Ep)
     forward, backward = _ExpMatrix(trans), _ExpMatrix(trans.T)
@@ -399,9 +399,14 @@ def viterbi(E, lengths, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
     label index, so the result is deterministic.
     """
     E, pk = _check_inputs(E, lengths, trans)
+    labels, scores = _viterbi_packed(pk.to_packed(E), pk, trans, start, end)
+    return labels[pk.packed_of_flat], scores
+
+
+def _viterbi_packed(Ep: np.ndarray, pk: _Packing, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
+    """Viterbi on packed emissions Ep (L, N); labels (N,) in packed order, scores (B,)."""
     trans = np.asarray(trans, dtype=np.float64)
     end = np.asarray(end, dtype=np.float64)
-    Ep = pk.to_packed(E)
     delta = np.empty_like(Ep)
     max_plus = _MaxPlus(trans)
     if pk.max_len:
@@ -421,7 +426,36 @@ def viterbi(E, lengths, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
         nxt = pk.cols(t + 1)
         prev = pk.cols(t, nxt.stop - nxt.start)
         labels[prev] = (delta[:, prev] + trans[:, labels[nxt]]).argmax(axis=0)
-    return labels[pk.packed_of_flat], scores
+    return labels, scores
+
+
+class Decoded(NamedTuple):
+    """Result of `decode`: what tagging needs from one batch, flat token layout."""
+
+    labels: np.ndarray  # (N,) int64 Viterbi path
+    scores: np.ndarray  # (B,) Viterbi path scores
+    fb: ForwardBackward  # for span probabilities and log Z
+    confidence: np.ndarray  # (N,) marginal probability of each token's decoded label
+
+
+def decode(E, lengths, trans, start, end) -> Decoded:
+    """Viterbi path, forward-backward, and each decoded label's marginal, packing the batch once.
+
+    Same results as `viterbi`, `forward_backward` and `token_marginals` gathered at the path, but the
+    tagger's hot path packs and transposes the batch once instead of three times and computes N
+    marginals instead of N x L. E (N, L), lengths (B,), trans (L, L), start (L,), end (L,) (masked).
+    """
+    E, pk = _check_inputs(E, lengths, trans)
+    Ep = pk.to_packed(E)
+    labels, scores = _viterbi_packed(Ep, pk, trans, start, end)
+    packed = _forward_backward_packed(E, pk, trans, start, end, Ep=Ep)
+    columns = np.arange(pk.n_tokens)
+    log_z = packed.log_z[pk.seq_of_token[pk.flat_of_packed]]
+    log_z = np.where(np.isfinite(log_z), log_z, np.inf)  # no finite path: confidence 0, not NaN
+    confidence = np.exp(packed.log_alpha[labels, columns] + packed.log_beta[labels, columns] - log_z)
+    np.minimum(confidence, 1.0, out=confidence)  # rounding can overshoot 1 by an ulp or two
+    fb = ForwardBackward(pk.to_flat(packed.log_alpha), pk.to_flat(packed.log_beta), packed.log_z, pk.lengths)
+    return Decoded(labels[pk.packed_of_flat], scores, fb, confidence[pk.packed_of_flat])
 
 
 def _top_k(candidates: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:

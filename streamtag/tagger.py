@@ -105,12 +105,11 @@ class Tagger:
         ]
         features, lengths = self.extractor.transform(texts_kinds)
         emissions = np.asarray(features @ self.emission)
-        labels, _ = crf.viterbi(emissions, lengths, self.trans, self.start, self.end)
-        fb = crf.forward_backward(emissions, lengths, self.trans, self.start, self.end)
-        token_conf = crf.token_marginals(fb)[np.arange(labels.size), labels]
-        results = self._assemble(lines, batch, labels, token_conf, emissions, fb)
+        decoded = crf.decode(emissions, lengths, self.trans, self.start, self.end)
+        results = self._assemble(lines, batch, decoded.labels, decoded.confidence, emissions, decoded.fb)
         if review_below is not None:
-            self._add_runner_up(results, batch, emissions, fb, review_below)
+            self._describe_weakest(results, batch, decoded.labels, decoded.confidence, review_below)
+            self._add_runner_up(results, batch, emissions, decoded.fb, review_below)
         return results
 
     # -- cutting lines into sequences -------------------------------------------------------------
@@ -188,7 +187,6 @@ class Tagger:
                                                         text[start:end], conf))
         for line_index in np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist():
             results[line_index].flags.append("split")
-        self._describe_weakest(results, batch, line_labels, line_conf, line_offsets, line_lengths)
         return results
 
     def _span_confidence(self, batch, fb, emissions, line_conf, line_offsets, owner,
@@ -213,21 +211,37 @@ class Tagger:
             conf[s] = line_conf[first : line_offsets[span_line[s]] + span_stop[s]].min()
         return conf
 
-    def _describe_weakest(self, results, batch, line_labels, line_conf, line_offsets, line_lengths) -> None:
-        """Name what set each line's confidence: its weakest span, else its weakest token."""
+    def _describe_weakest(self, results, batch, labels, token_conf, review_below: float) -> None:
+        """Name what set the confidence of each line going to review: its weakest span, else token.
+
+        Only lines under the threshold need a reason, so this runs on few lines; the token is found
+        again on the line's owned tokens (the windows' overlap never decides a label).
+        """
         for line_index, result in enumerate(results):
-            if result.n_tokens == 0:
+            if result.confidence >= review_below or result.n_tokens == 0:
                 continue
             weakest_span = min(result.spans, key=lambda span: span.confidence, default=None)
             if weakest_span is not None and weakest_span.confidence <= result.confidence:
                 result.weakest = (f"span {weakest_span.text!r} as {weakest_span.label} "
                                   f"at {weakest_span.confidence:.3f}")
                 continue
-            first = line_offsets[line_index]
-            position = int(np.argmin(line_conf[first : first + line_lengths[line_index]]))
-            label = self.model.labels[line_labels[first + position]]
+            position, label = self._weakest_token(batch, labels, token_conf, line_index)
             token = batch.token_lists[line_index].texts[position]
-            result.weakest = f"token {token!r} as {label} at {result.confidence:.3f}"
+            result.weakest = f"token {token!r} as {self.model.labels[label]} at {result.confidence:.3f}"
+
+    @staticmethod
+    def _weakest_token(batch, labels, token_conf, line_index: int) -> tuple[int, int]:
+        """(position in the line, label id) of the least confident token the line's windows own."""
+        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
+        best = (np.inf, 0, 0)
+        for s in np.flatnonzero(batch.seq_line == line_index).tolist():
+            first_token = int(batch.seq_first_token[s])
+            own_from, own_to = int(batch.owned_from[s]), int(batch.owned_to[s])
+            window = slice(seq_offsets[s] + own_from - first_token, seq_offsets[s] + own_to - first_token)
+            k = int(np.argmin(token_conf[window]))
+            if token_conf[window][k] < best[0]:
+                best = (token_conf[window][k], own_from + k, int(labels[window][k]))
+        return best[1], best[2]
 
     # -- runner-up labelling for doubtful lines -----------------------------------------------------
 

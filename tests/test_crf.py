@@ -435,3 +435,25 @@ def test_shapes_and_invariants(lengths, n_types, seed, k):
             # the reported score is the score of the reported path (model definition)
             path = best[None, offset:offset + n]
             assert abs(path_scores(path, E[offset:offset + n], trans, start, end)[0] - scores[b]) < 1e-9
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(0, 10_000))
+def test_fused_decode_equals_the_separate_functions(seed):
+    # Reference: viterbi, forward_backward and token_marginals, each checked above against
+    # brute-force enumeration of the CRF definition (Lafferty, McCallum & Pereira 2001).
+    rng = np.random.default_rng(seed)
+    labels = ["O", "B-a", "I-a", "B-b", "I-b"]
+    allowed_trans, allowed_start = crf.bio_allowed(labels)
+    trans, start = crf.apply_mask(rng.normal(size=(5, 5)) * 2, rng.normal(size=5), allowed_trans, allowed_start)
+    end = rng.normal(size=5)
+    lengths = rng.integers(0, 9, size=rng.integers(1, 7))
+    E = rng.normal(size=(int(lengths.sum()), 5)) * 3
+    decoded = crf.decode(E, lengths, trans, start, end)
+    path, scores = crf.viterbi(E, lengths, trans, start, end)
+    fb = crf.forward_backward(E, lengths, trans, start, end)
+    np.testing.assert_array_equal(decoded.labels, path)
+    np.testing.assert_array_equal(decoded.scores, scores)
+    np.testing.assert_allclose(decoded.fb.log_z, fb.log_z, rtol=0, atol=1e-12)
+    marginals = crf.token_marginals(fb)
+    np.testing.assert_allclose(decoded.confidence, marginals[np.arange(path.size), path], rtol=0, atol=1e-12)
