@@ -152,7 +152,7 @@ def run_evaluate(args: argparse.Namespace) -> int:
 # -- tag ----------------------------------------------------------------------------------------
 
 def run_tag(args: argparse.Namespace) -> int:
-    from streamtag.records import encode, make_record
+    from streamtag.batch import encode_batch, tag_decoded
     from streamtag.tagger import Tagger
 
     if not 0.0 <= args.threshold <= 1.0:
@@ -162,33 +162,19 @@ def run_tag(args: argparse.Namespace) -> int:
     tagger = Tagger(load_model(args.model), max_tokens=args.max_tokens)
     out = sys.stdout.buffer
     for batch in _batches(_input_lines(args.files), args.batch):
-        texts = [text for _, _, _, text, _ in batch]
-        tagged = tagger.tag(texts)
-        records = [
-            make_record(t, tagger.model_id, review=t.confidence < args.threshold, source=source, offset=offset,
-                        line=line_no, flags=flags)
-            for (source, offset, line_no, _, flags), t in zip(batch, tagged)
-        ]
-        out.write(encode(records))
+        decoded = [line for _, _, _, line in batch]
+        tagged = tag_decoded(tagger, decoded, None)
+        output, _, _ = encode_batch(decoded, tagged, tagger.model_id, args.threshold,
+                                    sources=[b[0] for b in batch], offsets=[b[1] for b in batch],
+                                    line_numbers=[b[2] for b in batch], read_flags=[()] * len(batch),
+                                    want_review=False)
+        out.write(output)
         out.flush()
     return 0
 
 
-def decode_line(raw: bytes) -> tuple[str, list[str]]:
-    """Bytes of one line -> text and flags. Invalid UTF-8 is replaced (U+FFFD) and flagged."""
-    flags = []
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        text = raw.decode("utf-8", errors="replace")
-        flags.append("invalid_utf8")
-    if "\x00" in text:
-        flags.append("nul_bytes")
-    return text, flags
-
-
-def _input_lines(files: list[str]) -> Iterator[tuple[str | None, int, int, str, list[str]]]:
-    """(source, byte offset, line number, text, flags) for each line of the files, or of stdin."""
+def _input_lines(files: list[str]) -> Iterator[tuple]:
+    """(source, byte offset, line number, DecodedLine) for each line of the files, or of stdin."""
     sources = files or ["-"]
     for name in sources:
         if name == "-":
@@ -203,12 +189,13 @@ def _input_lines(files: list[str]) -> Iterator[tuple[str | None, int, int, str, 
 
 
 def _lines_of(handle, source: str | None):
+    from streamtag.decode import decode_text
+
     offset = 0
     for line_no, raw in enumerate(handle, start=1):
         start = offset
         offset += len(raw)
-        text, flags = decode_line(raw.rstrip(b"\n").rstrip(b"\r"))
-        yield source, start, line_no, text, flags
+        yield source, start, line_no, decode_text(raw.rstrip(b"\n").rstrip(b"\r"))
 
 
 def _batches(items: Iterable, size: int) -> Iterator[list]:

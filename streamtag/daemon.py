@@ -22,7 +22,6 @@ import argparse
 import errno
 import os
 import queue
-import re
 import signal
 import sys
 import threading
@@ -33,13 +32,14 @@ from typing import Any, Callable
 import numpy as np
 import orjson
 
-from streamtag import records
+from streamtag.batch import encode_batch, tag_decoded
 from streamtag.checkpoint import State, fsync_directory, load_state, recover_outputs, save_state, write_file_atomically
 from streamtag.config import WatchConfig, load_watch_config
+from streamtag.decode import decode_json, decode_text
 from streamtag.errors import ConfigError, ModelError, StreamtagError
 from streamtag.follow import ChangeWatcher, Follower
 from streamtag.model import Model, default_model_path, load_model
-from streamtag.tagger import TaggedLine, Tagger
+from streamtag.tagger import Tagger
 
 STATE_FILE = "state.json"
 STATS_FILE = "stats.json"
@@ -48,10 +48,6 @@ BACKOFF_CAP_SECONDS = 5.0
 MODEL_CHECK_SECONDS = 1.0
 HINT_QUEUE_SIZE = 64  # one pending hint is enough to wake the loop; the watcher drops the rest
 WAIT_SLICE_SECONDS = 0.1  # longest sleep between looks at the signal flags
-# A line is "binary" when more than this share of its characters are control characters or
-# replacement characters from broken UTF-8 (text logs have almost none).
-BINARY_SHARE = 0.3
-BINARY_MIN_CHARS = 16  # a shorter line is too little evidence: a few broken bytes are still text
 # Tagging a sample proves a new model's labels and feature spec work before it is swapped in.
 MODEL_PROBE_LINE = "gatewarden[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
 
@@ -62,121 +58,6 @@ def stderr_log(message: str) -> None:
     """One line on stderr (foreground daemon; a service manager adds its own timestamps)."""
     sys.stderr.write(f"{time.strftime('%Y-%m-%dT%H:%M:%S')} streamtag: {message}\n")
     sys.stderr.flush()
-
-
-# -- decoding raw bytes into text and flags ----------------------------------------------------
-
-# ECMA-48 (5th ed.) section 5.4: a control sequence is CSI (ESC [), parameter bytes 0x30-0x3F,
-# intermediate bytes 0x20-0x2F, one final byte 0x40-0x7E. OSC strings (ESC ]) end with BEL or ST
-# (ESC \). Other two-byte escapes are ESC followed by one byte 0x40-0x5F.
-_ESCAPE_SEQUENCE = re.compile(
-    r"\x1b\[[\x30-\x3f]*[\x20-\x2f]*[\x40-\x7e]"
-    r"|\x1b\][^\x07\x1b]*(?:\x07|\x1b\\)?"
-    r"|\x1b[\x40-\x5f]"
-)
-# C0 controls except TAB (white space), DEL, and the C1 controls U+0080..U+009F.
-_CONTROL = re.compile(r"[\x00-\x08\x0a-\x1f\x7f-\x9f]")
-
-
-@dataclass(slots=True)
-class DecodedLine:
-    """What to record (``text``, faithful) and what to tag (``tag_text``, same length, controls
-    blanked so that span offsets into it are offsets into ``text``)."""
-
-    text: str
-    tag_text: str
-    flags: list[str]
-    fields: dict | None = None
-    binary: bool = False
-
-
-def decode_text(data: bytes) -> DecodedLine:
-    """Bytes of one line (newline already removed) -> text, text to tag, flags.
-
-    Invalid UTF-8 is replaced by U+FFFD ("invalid_utf8"); NUL becomes a space in the recorded text
-    ("nul_bytes") because many consumers of JSON treat U+0000 as the end of a string; other control
-    characters and terminal escape sequences stay in the recorded text but are blanked for tagging
-    ("control_chars"); a line that is mostly controls is "binary" and not tagged.
-    """
-    try:
-        text = data.decode("utf-8")
-        flags = []
-    except UnicodeDecodeError:
-        text = data.decode("utf-8", errors="replace")
-        flags = ["invalid_utf8"]
-    return _sanitize(text, flags)
-
-
-def _sanitize(text: str, flags: list[str]) -> DecodedLine:
-    if not _CONTROL.search(text):
-        if "invalid_utf8" in flags and _is_binary(text, 0):
-            return DecodedLine(text, text, flags + ["binary"], binary=True)
-        return DecodedLine(text, text, flags)
-    if "\0" in text:
-        text = text.replace("\0", " ")
-        flags.append("nul_bytes")
-    n_controls = len(_CONTROL.findall(text))
-    if n_controls:
-        flags.append("control_chars")
-    if _is_binary(text, n_controls):
-        return DecodedLine(text, text, flags + ["binary"], binary=True)
-    blank = lambda match: " " * len(match.group())  # noqa: E731  (keeps offsets)
-    tag_text = _CONTROL.sub(" ", _ESCAPE_SEQUENCE.sub(blank, text))
-    return DecodedLine(text, tag_text, flags)
-
-
-def _is_binary(text: str, n_controls: int) -> bool:
-    if len(text) < BINARY_MIN_CHARS:
-        return False
-    suspicious = n_controls + text.count("\ufffd")
-    return suspicious > BINARY_SHARE * len(text)
-
-
-def decode_json(data: bytes, text_field: str) -> DecodedLine:
-    """A JSON object line: the text at the dotted ``text_field``, other fields under ``fields``.
-
-    Malformed JSON (or not an object) keeps the raw line as the text, flagged "bad_json"; an
-    object without a string at ``text_field`` keeps the raw line as text, flagged "no_text_field".
-    """
-    line = decode_text(data)
-    if line.binary:
-        return line
-    try:
-        document = orjson.loads(line.text)
-    except orjson.JSONDecodeError:
-        document = None
-    if not isinstance(document, dict):
-        line.flags.append("bad_json")
-        return line
-    text, fields = _pop_dotted(document, text_field.split("."))
-    if not isinstance(text, str):
-        line.flags.append("no_text_field")
-        line.fields = document
-        return line
-    decoded = _sanitize(text, [f for f in line.flags if f == "invalid_utf8"])
-    decoded.fields = fields
-    return decoded
-
-
-def _pop_dotted(document: dict, parts: list[str]) -> tuple[Any, dict]:
-    """(value at the dotted path or None, the document without it); the document is not changed."""
-    head, rest = parts[0], parts[1:]
-    if head not in document:
-        return None, document
-    value = document[head]
-    if not rest:
-        if not isinstance(value, str):
-            return None, document
-        return value, {k: v for k, v in document.items() if k != head}
-    if not isinstance(value, dict):
-        return None, document
-    found, inner = _pop_dotted(value, rest)
-    if found is None:
-        return None, document
-    remaining = {k: v for k, v in document.items() if k != head}
-    if inner:
-        remaining[head] = inner
-    return found, remaining
 
 
 # -- output files: append, fsync, cut back on failure --------------------------------------------
@@ -620,44 +501,12 @@ class Daemon:
             decoded = [decode_json(raw.data, config.text_field) for raw in raw_lines]
         else:
             decoded = [decode_text(raw.data) for raw in raw_lines]
-        tagged = self._tag(decoded)
-        model_id = self.tagger.model_id
-        threshold = config.review_threshold
-        output, review = [], []
-        for raw, line, result in zip(raw_lines, decoded, tagged):
-            result.text = line.text  # faithful text; span offsets are the same in both
-            doubtful = not line.binary and result.confidence < threshold
-            record = records.make_record(
-                result, model_id, doubtful, source=raw.path, offset=raw.start, line=raw.line_no,
-                flags=list(raw.flags) + line.flags, fields=line.fields,
-            )
-            output.append(record)
-            if doubtful:
-                review.append(records.make_review_record(record, result, threshold))
-        return records.encode(output), records.encode(review), len(review)
-
-    def _tag(self, decoded: list[DecodedLine]) -> list[TaggedLine]:
-        """Tag the text lines of a batch; binary lines get an empty result (recorded, not tagged)."""
-        to_tag = [i for i, line in enumerate(decoded) if not line.binary]
-        results: list[TaggedLine | None] = [None] * len(decoded)
-        texts = [decoded[i].tag_text for i in to_tag]
-        try:
-            tagged = self.tagger.tag(texts, review_below=self.config.review_threshold)
-        except Exception as exc:  # a defect must not stall the stream: tag line by line instead
-            self.log(f"tagging a batch failed ({type(exc).__name__}: {exc}); tagging its lines one by one")
-            tagged = [self._tag_one(text) for text in texts]
-        for i, result in zip(to_tag, tagged):
-            results[i] = result
-        for i, line in enumerate(decoded):
-            if results[i] is None:
-                results[i] = TaggedLine(text=line.text, spans=[], confidence=1.0, n_tokens=0)
-        return results
-
-    def _tag_one(self, text: str) -> TaggedLine:
-        try:
-            return self.tagger.tag([text], review_below=self.config.review_threshold)[0]
-        except Exception:
-            return TaggedLine(text=text, spans=[], confidence=0.0, n_tokens=0, flags=["tag_error"])
+        tagged = tag_decoded(self.tagger, decoded, config.review_threshold, self.log)
+        return encode_batch(
+            decoded, tagged, self.tagger.model_id, config.review_threshold,
+            sources=[raw.path for raw in raw_lines], offsets=[raw.start for raw in raw_lines],
+            line_numbers=[raw.line_no for raw in raw_lines], read_flags=[raw.flags for raw in raw_lines],
+        )
 
     # -- model swap ----------------------------------------------------------------------------
 

@@ -330,16 +330,10 @@ def _init_worker(settings: TagSettings, ignore_interrupt: bool) -> None:
 
 
 def _tag_chunk(chunk: Chunk) -> tuple[bytes, bytes, int]:
-    """Chunk -> (output bytes, review bytes, lines sent to review).
-
-    Decoding, what is tagged and how records are built follow the daemon's batch step
-    (``Daemon._encode_batch``): binary lines are recorded untagged, control characters are blanked
-    for tagging only, and the recorded text is the faithful one.
-    """
+    """Chunk -> (output bytes, review bytes, lines sent to review), exactly as the daemon builds them."""
     # Imported here: the CLI imports this module to build its parser, and these pull in numpy/scipy.
-    from streamtag.daemon import decode_json, decode_text
-    from streamtag.records import encode, make_record, make_review_record
-    from streamtag.tagger import TaggedLine
+    from streamtag.batch import encode_batch, tag_decoded
+    from streamtag.decode import decode_json, decode_text
 
     tagger = _worker["tagger"]
     settings: TagSettings = _worker["settings"]
@@ -347,21 +341,10 @@ def _tag_chunk(chunk: Chunk) -> tuple[bytes, bytes, int]:
         decoded = [decode_json(raw, settings.text_field) for raw in chunk.raw]
     else:
         decoded = [decode_text(raw) for raw in chunk.raw]
-    to_tag = [i for i, line in enumerate(decoded) if not line.binary]
-    tagged = dict(zip(to_tag, tagger.tag([decoded[i].tag_text for i in to_tag],
-                                         settings.threshold if settings.want_review else None)))
-    records, review_records = [], []
-    for i, line in enumerate(decoded):
-        result = tagged.get(i) or TaggedLine(text=line.text, spans=[], confidence=1.0, n_tokens=0)
-        result.text = line.text  # faithful text; span offsets are the same in both
-        doubtful = not line.binary and result.confidence < settings.threshold
-        record = make_record(result, tagger.model_id, doubtful, source=chunk.sources[i], offset=chunk.offsets[i],
-                             line=chunk.line_numbers[i], flags=list(chunk.flags[i]) + line.flags, fields=line.fields)
-        records.append(record)
-        if doubtful and settings.want_review:
-            review_records.append(make_review_record(record, result, settings.threshold))
-    n_review = sum(record["review"] for record in records)
-    return encode(records), encode(review_records), n_review
+    tagged = tag_decoded(tagger, decoded, settings.threshold if settings.want_review else None)
+    return encode_batch(decoded, tagged, tagger.model_id, settings.threshold, sources=chunk.sources,
+                        offsets=chunk.offsets, line_numbers=chunk.line_numbers, read_flags=chunk.flags,
+                        want_review=settings.want_review)
 
 
 # -- the progress sidecar ----------------------------------------------------------------------------

@@ -33,7 +33,8 @@ from daemon_support import (
     DaemonProcess, InProcessDaemon, build_tiny_model, count_lines, read_records, wait_until, write_config,
 )
 from streamtag.checkpoint import load_state
-from streamtag.daemon import BatchWriter, LatencyHistogram, OutputFile, decode_json, decode_text
+from streamtag.daemon import BatchWriter, LatencyHistogram, OutputFile
+from streamtag.decode import decode_json, decode_text
 
 
 # -- decoding ------------------------------------------------------------------------------------

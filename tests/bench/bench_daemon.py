@@ -180,7 +180,7 @@ def bench_memory(work: Path, model: Path, n_lines: int) -> dict:
 def profile_tagging(model: Path, n_lines: int, batch: int) -> str:
     """cProfile of the daemon's per-batch work (decode, tag, records, encode) in this process."""
     from streamtag import records
-    from streamtag.daemon import decode_text
+    from streamtag.decode import decode_text
     from streamtag.model import load_model
     from streamtag.tagger import Tagger
 
