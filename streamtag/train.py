@@ -306,25 +306,40 @@ def _default_threads() -> int:
 
 
 def _fit_lbfgs(X, gold, lengths, layout, options, weights, theta0, keeper, progress, began):
-    objective = TrainingObjective(X, gold, lengths, layout, weights, l2=options.l2, threads=_default_threads())
-    n_params, l1 = layout.size, float(options.l1)
+    """L-BFGS(-B) on the change delta = theta - theta0, with the L1 and L2 penalties on delta.
+
+    With no initial model theta0 is zero and this is the usual elastic net. With one, the penalties
+    become a prior centred on the old weights (Chelba & Acero 2004, "Adaptation of maximum entropy
+    capitalizer: little data can help a lot"): a few corrected lines move the model where they
+    disagree with it instead of pulling every old weight towards zero.
+    """
+    objective = TrainingObjective(X, gold, lengths, layout, weights, l2=0.0, threads=_default_threads())
+    n_params, l1, l2 = layout.size, float(options.l1), float(options.l2)
+
+    def penalised(delta):
+        value, grad = objective(theta0 + delta)
+        if l2:
+            value += 0.5 * l2 * float(delta @ delta)
+            grad += l2 * delta
+        return value, grad
+
     if l1 > 0:
-        # w = u - v, u, v >= 0: the L1 norm becomes the linear term l1 * sum(u + v), so the problem is
-        # smooth on a box and L-BFGS-B reaches exact zeros at the bounds.
+        # delta = u - v, u, v >= 0: the L1 norm becomes the linear term l1 * sum(u + v), so the problem
+        # is smooth on a box and L-BFGS-B reaches exact zeros at the bounds.
         def to_theta(x):
-            return x[:n_params] - x[n_params:]
+            return theta0 + (x[:n_params] - x[n_params:])
 
         def fun(x):
-            value, grad = objective(to_theta(x))
+            value, grad = penalised(x[:n_params] - x[n_params:])
             return value + l1 * float(x.sum()), np.concatenate((grad + l1, l1 - grad))
 
-        x0 = np.concatenate((np.maximum(theta0, 0.0), np.maximum(-theta0, 0.0)))
+        x0 = np.zeros(2 * n_params)
         bounds = Bounds(np.zeros(2 * n_params), np.full(2 * n_params, np.inf))
     else:
         def to_theta(x):
-            return x
+            return theta0 + x
 
-        fun, x0, bounds = objective, theta0, None
+        fun, x0, bounds = penalised, np.zeros(n_params), None
 
     iteration = 0
 

@@ -169,8 +169,14 @@ def bench_memory(work: Path, model: Path, n_lines: int) -> dict:
     if not warm:
         return {"lines": n_lines, "error": "no samples after warm-up"}
     low, high = min(warm), max(warm)
+    # RSS at each tenth of the run shows growth (a leak) apart from caches filling to their bound.
+    by_tenth = [round(max((rss for done, rss in samples if done <= n_lines * k // 10), default=0) / 1024, 1)
+                for k in range(1, 11)]
+    second_half = [rss for done, rss in samples if done >= n_lines // 2]
     return {"lines": n_lines, "samples": len(warm), "rss_min_mib": round(low / 1024, 1),
             "rss_max_mib": round(high / 1024, 1), "spread": round(high / low - 1, 4),
+            "rss_mib_by_tenth": by_tenth,
+            "spread_second_half": round(max(second_half) / min(second_half) - 1, 4) if second_half else None,
             "goal": "max/min - 1 <= 0.10", "met": high / low - 1 <= 0.10}
 
 

@@ -88,6 +88,18 @@ def bench_inference(E, lengths, trans, start, end, repeats=3):
     print(f"  {'viterbi + fb + marginals':30s} {both * 1000:8.1f} ms  {n / both / 1e6:6.2f} M tokens/s")
 
 
+def saved_size_mb(params: dict, labels: list[str]) -> float:
+    """Size of the model file these weights make, as `streamtag train` would write it."""
+    from streamtag.features import FeatureSpec
+    from streamtag.model import Model, model_to_bytes
+
+    n_features = params["emission"].shape[0]
+    model = Model(labels=list(labels), feature_spec=FeatureSpec.default().to_dict(),
+                  vocabulary=[f"synthetic={i}" for i in range(n_features)], emission=params["emission"],
+                  transitions=params["transitions"], start=params["start"], end=params["end"])
+    return len(model_to_bytes(model)[0]) / 2**20
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--tokens", type=int, default=200_000)
@@ -142,6 +154,7 @@ def main() -> int:
     print(f"  load average now {' '.join(f'{x:.1f}' for x in os.getloadavg())} (wall times stretch when it exceeds the cores)")
     print(f"  final objective {info['loss']:.2f}, train token accuracy {np.mean(predicted == gold):.4f}, "
           f"zero emission weights {np.mean(params['emission'] == 0):.1%}")
+    print(f"model file {saved_size_mb(params, labels):.2f} MB (zero rows dropped, float32, compressed)")
     print(f"peak RSS {peak_rss_mb():.0f} MB")
     return 0
 
