@@ -326,7 +326,7 @@ class ReviewSession:
             self.screen.say()
             return None
         if self.echo:
-            self.screen.say(line.rstrip("\n"))  # a piped command shows up in the transcript
+            self.screen.say(line.rstrip("\n"))  # echo piped input so the screen reads like a typed session
         return line.strip()
 
     def run(self) -> bool:
