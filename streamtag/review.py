@@ -287,8 +287,10 @@ class Screen:
         place = f"{record.get('source') or '-'} line {record.get('line')} offset {record.get('offset')}"
         self.say(f"\n--- {number} of {total} --- {_visible(place)}")
         confidence = record.get("confidence")
-        reason = record.get("reason") or ""
-        self.say(f"confidence {confidence if confidence is not None else '?'}  {_visible(str(reason))}")
+        reason = record.get("reason")
+        if not reason:  # records from `streamtag tag` or another tool carry no reason
+            reason = f"confidence {confidence if confidence is not None else '?'}"
+        self.say("why: " + _visible(str(reason)))
         self.say("  " + self.marked(item.text, item.spans))
         self.say(self.span_list(item.text, item.spans))
         if item.runner_up is None:
