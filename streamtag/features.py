@@ -22,8 +22,8 @@ import tomllib
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from importlib import resources
-from itertools import chain, groupby, islice
-from operator import add
+from itertools import chain, groupby, islice, repeat
+from operator import add, itemgetter
 from pathlib import Path
 
 import numpy as np
@@ -593,14 +593,23 @@ class _CountingEncoder:
 
 
 def _token_types(sentences: Sequence[tuple[list[str], list[str]]], n_tokens: int):
+    """Type index of every token and the distinct (text, kind) types: ((N,) int32, list of U keys)."""
+    return token_types(list(chain.from_iterable(s[0] for s in sentences)),
+                       list(chain.from_iterable(s[1] for s in sentences)))
+
+
+def token_types(texts: list[str], kinds: list[str]) -> tuple[np.ndarray, list[tuple[str, str]]]:
     """Type index of every token and the distinct (text, kind) types: ((N,) int32, list of U keys).
 
     This is the only per-token Python work, and it runs in C loops (dict.fromkeys, map). Texts and
     kinds are indexed separately because building and hashing a (text, kind) tuple per token costs
     several times more; the pair is rebuilt for distinct types only.
     """
-    texts = list(chain.from_iterable(s[0] for s in sentences))
-    kinds = list(chain.from_iterable(s[1] for s in sentences))
+    n_tokens = len(texts)
+    if len(kinds) != n_tokens:
+        raise DataError(f"{n_tokens} tokens but {len(kinds)} kinds")
+    if n_tokens == 0:
+        return np.zeros(0, dtype=_ID), []
     text_index = dict.fromkeys(texts)
     distinct_texts = list(text_index)
     text_index.update(zip(distinct_texts, range(len(distinct_texts))))
@@ -842,5 +851,248 @@ class FeatureExtractor:
         return rows
 
 
-__all__ = ["FeatureSpec", "FeatureExtractor", "WindowOffset", "GROUPS", "FLAGS", "word_shape",
+def _block_sums(weights: np.ndarray, n_slots: int, pair_lists: list[Pairs]) -> np.ndarray:
+    """(M, K, L): for each list of (slot, id) pairs, the sum of weights[id] at row slot."""
+    counts = np.fromiter(map(len, pair_lists), dtype=np.int64, count=len(pair_lists))
+    pairs = np.fromiter(chain.from_iterable(pair_lists), dtype=np.int64, count=int(counts.sum()))
+    segment = np.repeat(np.arange(len(pair_lists)) * n_slots, counts) + (pairs >> _SLOT_SHIFT)
+    ids = pairs & ((1 << _SLOT_SHIFT) - 1)
+    selector = csr_matrix((np.ones(ids.size), (segment, ids)),
+                          shape=(len(pair_lists) * n_slots, weights.shape[0]))
+    return np.asarray(selector @ weights).reshape(len(pair_lists), n_slots, weights.shape[1])
+
+
+class _TypeScorer:
+    """(K, L) score blocks of many new (text, kind) types at once: per slot, the sum of W's rows over
+    the type's known feature ids, exactly the ids `_VocabularyEncoder.append_pairs` gives.
+
+    New types arrive a few per log line (timestamps, ids, addresses), so this is a hot path of
+    decoding. Every feature value the vocabulary knows ("lower=failed", "p3=err", "list=...")
+    gets its summed block once, up front (at most one per vocabulary entry). A batch's new types
+    then need only C-level ``map`` lookups of their values (lower form, each prefix and suffix) and
+    a numpy gather-add per value: no Python loop per type. Shape-and-kind blocks are filled on first
+    use: log tokens share a handful of shapes. Values the vocabulary lacks hit the zero block.
+    """
+
+    def __init__(self, encoder: _VocabularyEncoder, weights: np.ndarray, n_slots: int, limit: int):
+        self.encoder, self.weights, self.n_slots, self.limit = encoder, weights, n_slots, limit
+        spec, index = encoder.spec, encoder.index
+        names = list(index)
+        self.value_blocks = np.concatenate([np.zeros((1, n_slots, weights.shape[1])),
+                                            _block_sums(weights, n_slots, [index[name] for name in names])])
+        row_of = dict(zip(names, range(1, len(names) + 1)))
+
+        def rows_by_value(label: str) -> dict[str, int]:
+            return {name[len(label):]: row for name, row in row_of.items() if name.startswith(label)}
+
+        # (value slice of the lower form, its value -> block row), one per lower/prefix/suffix feature
+        self.lookups: list[tuple[slice, dict[str, int]]] = []
+        if encoder.use["lower"]:
+            self.lookups.append((slice(spec.max_value_chars), rows_by_value("lower=")))
+        # A value shorter than its length ("p3=ab") is never in the vocabulary (such features are made
+        # only from long enough tokens), so a short token's slice simply finds nothing.
+        self.lookups += [(slice(n), rows_by_value(label)) for n, label in zip(spec.prefix_lengths,
+                                                                              encoder.prefix_labels)]
+        self.lookups += [(slice(-n, None), rows_by_value(label)) for n, label in zip(spec.suffix_lengths,
+                                                                                     encoder.suffix_labels)]
+        self.lookups = [(cut, rows) for cut, rows in self.lookups if rows]
+        wordlists = spec.wordlists if encoder.use["wordlists"] else ()
+        tests = [(words.__contains__, True, "list=" + name) for name, words in wordlists]
+        tests += [(holds, False, "flag=" + name) for name, holds in encoder.text_flags]
+        self.tests = [(test, on_lower, row_of[name]) for test, on_lower, name in tests if name in row_of]
+        self.value_flat = self.value_blocks.reshape(self.value_blocks.shape[0], -1)   # (values, K*L)
+        self._reset_shapes()
+
+    def _reset_shapes(self) -> None:
+        self.shape_row: dict[tuple[str, str], int] = {}
+        self.shape_blocks = np.zeros((64, self.n_slots, self.weights.shape[1]))
+
+    def _shape_rows(self, keys: list[tuple[str, str]]) -> np.ndarray:
+        rows = np.fromiter(map(self.shape_row.get, keys, repeat(-1)), dtype=np.int64, count=len(keys))
+        missing = np.flatnonzero(rows < 0)
+        if missing.size:
+            if len(self.shape_row) + missing.size > self.limit:
+                self._reset_shapes()
+                missing = np.arange(len(keys))
+            new_keys = list(dict.fromkeys(keys[n] for n in missing.tolist()))   # few: shapes repeat
+            first, needed = len(self.shape_row), len(self.shape_row) + len(new_keys)
+            if needed > self.shape_blocks.shape[0]:
+                grown = np.zeros((2 * needed,) + self.shape_blocks.shape[1:])
+                grown[:first] = self.shape_blocks[:first]
+                self.shape_blocks = grown
+            self.shape_blocks[first:needed] = _block_sums(self.weights, self.n_slots,
+                                                          [self.encoder.shape_pairs(*key) for key in new_keys])
+            self.shape_row.update(zip(new_keys, range(first, needed)))
+            rows[missing] = [self.shape_row[keys[n]] for n in missing.tolist()]
+        return rows
+
+    def scores(self, keys: list[tuple[str, str]], out: np.ndarray) -> None:
+        """Write the (M, K, L) score blocks of the types ``keys`` into ``out``."""
+        texts = [text for text, _ in keys]
+        lowers = list(map(str.lower, texts))
+        shape_keys = list(zip(map(str.translate, texts, repeat(_SHAPE_TABLE)), [kind for _, kind in keys]))
+        shape_rows = self._shape_rows(shape_keys)   # first: it may grow shape_blocks
+        np.take(self.shape_blocks, shape_rows, axis=0, out=out)
+        # Every other value: one block row per type and value (0, the zero block, when unknown),
+        # summed by one sparse (M, values) x (values, K*L) product in a single pass over the output.
+        n_types, n_values = len(keys), len(self.lookups) + len(self.tests)
+        if n_values == 0:
+            return
+        columns = np.empty((n_types, n_values), dtype=np.int64)
+        for j, (cut, rows) in enumerate(self.lookups):
+            columns[:, j] = np.fromiter(map(rows.get, map(itemgetter(cut), lowers), repeat(0)), dtype=np.int64,
+                                        count=n_types)
+        for j, (test, on_lower, row) in enumerate(self.tests, start=len(self.lookups)):
+            columns[:, j] = np.fromiter(map(test, lowers if on_lower else texts), dtype=bool, count=n_types)
+            columns[:, j] *= row
+        selector = csr_matrix((np.ones(columns.size), columns.ravel(),
+                               np.arange(0, columns.size + 1, n_values)),
+                              shape=(n_types, self.value_blocks.shape[0]))
+        out += (selector @ self.value_flat).reshape(out.shape)
+
+
+class EmissionScorer:
+    """Emission scores E = X @ W of a batch, without building X: the decoding fast path.
+
+    A token's feature row (see `_RowBuilder.build`) is the union of the position constants (bias,
+    first, last, relative bucket), its own type's slot-0 features and, for each window offset, the
+    neighbour type's features at that slot (or the offset's boundary feature). Its row of X @ W is
+    therefore a sum of a few score vectors, each the sum of W's rows over one cached id list. Those
+    sums are computed once per distinct (text, kind) type and kept in a table, so a batch costs one
+    gather of (N, L) per slot instead of a sparse product over ~70 features per token.
+
+    The table is bounded by ``cache_size`` types and starts afresh when full (between batches, so
+    memory stays flat); the result equals ``extractor.transform(...)[0] @ weights`` up to rounding
+    (a test checks 1e-9).
+    """
+
+    # Row 0 of every slot's table is the boundary row (no neighbour at that offset); types start at 1.
+    _BOUNDARY = 0
+
+    def __init__(self, extractor: FeatureExtractor, weights: np.ndarray, cache_size: int = 100_000):
+        weights = np.ascontiguousarray(weights, dtype=np.float64)
+        if weights.ndim != 2 or weights.shape[0] != extractor.n_features:
+            raise ValueError(f"weights must be ({extractor.n_features}, L), got {weights.shape}")
+        self.spec = extractor.spec
+        self.rows = extractor._rows
+        self.weights = weights
+        self.cache_size = max(1, int(cache_size))
+        self.n_slots = len(self.rows.offsets)
+        self.n_labels = weights.shape[1]
+        self.type_scorer = _TypeScorer(self.rows.encoder, weights, self.n_slots, self.cache_size)
+        constants = np.where(self.rows.constant_known > 0, self.rows.constants, -1)
+        self.constant_rows = self._weight_rows(constants)                   # (C, L)
+        self._kind_ids: dict[str, int] = {}
+        self._reset(capacity=1024)
+
+    def _weight_rows(self, ids: np.ndarray) -> np.ndarray:
+        """W[ids] with a zero row for id -1 (a feature outside the vocabulary)."""
+        rows = np.zeros((len(ids), self.n_labels))
+        rows[ids >= 0] = self.weights[ids[ids >= 0]]
+        return rows
+
+    def _reset(self, capacity: int) -> None:
+        # Two indexes to the same rows: by text alone, for the first kind a text came with (almost
+        # every text only ever has one), and by (text, kind) for all. The first is one C-level map per
+        # batch; the second builds a tuple per token, so it serves only the tokens the first misses.
+        self.row_of_text: dict[str, int] = {}
+        self.row_of_type: dict[tuple[str, str], int] = {}
+        self.table = np.zeros((capacity, self.n_slots, self.n_labels))     # (capacity, K, L)
+        self.kind_of_row = np.full(capacity, -1, dtype=np.int64)          # (capacity,) kind id
+        boundary = self.constant_rows[self.rows.boundary_base:]
+        self.table[self._BOUNDARY, 1:] = boundary                           # slot k -> offsets[k]
+        self.n_rows = 1
+
+    def type_rows(self, texts: list[str], kinds: list[str]) -> np.ndarray:
+        """(N,) int64 table row of each token's type, scoring the types not seen before."""
+        n = len(texts)
+        if len(kinds) != n:
+            raise DataError(f"{n} tokens but {len(kinds)} kinds")
+        rows = np.fromiter(map(self.row_of_text.get, texts, repeat(self._BOUNDARY)), dtype=np.int64, count=n)
+        kind_ids = np.fromiter(map(self._kind_id, kinds), dtype=np.int64, count=n)
+        other = np.flatnonzero(self.kind_of_row[rows] != kind_ids)   # new, or the text's other kind
+        if self.n_rows + other.size > self.cache_size:
+            # The table may have to start afresh, which would orphan the rows found above: redo all.
+            self._reset(capacity=self.table.shape[0])
+            return self._rows_by_type(texts, kinds)
+        if other.size:
+            picked = other.tolist()
+            rows[other] = self._rows_by_type([texts[i] for i in picked], [kinds[i] for i in picked])
+        return rows
+
+    def _kind_id(self, kind: str) -> int:
+        kind_id = self._kind_ids.get(kind)
+        if kind_id is None:
+            kind_id = self._kind_ids[kind] = len(self._kind_ids)
+        return kind_id
+
+    def _rows_by_type(self, texts: list[str], kinds: list[str]) -> np.ndarray:
+        token_type, keys = token_types(texts, kinds)
+        rows = list(map(self.row_of_type.get, keys))                       # distinct types only
+        missing = [n for n, row in enumerate(rows) if row is None]
+        if missing:
+            if self.n_rows + len(missing) > self.cache_size:
+                self._reset(capacity=self.table.shape[0])
+                missing = list(range(len(keys)))
+            new_rows = self._add_types([keys[n] for n in missing])
+            for n, row in zip(missing, new_rows):
+                rows[n] = row
+        return np.asarray(rows, dtype=np.int64)[token_type]
+
+    def _add_types(self, keys: list[tuple[str, str]]) -> list[int]:
+        """Score new types into the table (per slot, the sum of W over the type's ids there)."""
+        first, n_new = self.n_rows, len(keys)
+        self._grow(first + n_new)
+        self.type_scorer.scores(keys, out=self.table[first : first + n_new])
+        self.n_rows = first + n_new
+        new_rows = list(range(first, first + n_new))
+        self.kind_of_row[first : first + n_new] = [self._kind_id(kind) for _, kind in keys]
+        for key, row in zip(keys, new_rows):
+            if len(key[0]) <= _MAX_CACHED_CHARS:   # long texts seldom repeat: scored, not kept
+                self.row_of_type[key] = row
+                self.row_of_text.setdefault(key[0], row)
+        return new_rows
+
+    def _grow(self, needed: int) -> None:
+        capacity = self.table.shape[0]
+        if needed <= capacity:
+            return
+        while capacity < needed:
+            capacity *= 2
+        grown = np.zeros((capacity, self.n_slots, self.n_labels))
+        grown[: self.n_rows] = self.table[: self.n_rows]
+        self.table = grown
+        kinds = np.full(capacity, -1, dtype=np.int64)
+        kinds[: self.n_rows] = self.kind_of_row[: self.n_rows]
+        self.kind_of_row = kinds
+
+    def emissions(self, rows: np.ndarray, lengths: np.ndarray) -> np.ndarray:
+        """E (N, L) for tokens of type rows ``rows`` (N,) in sequences of ``lengths`` (S,)."""
+        rows = np.asarray(rows, dtype=np.int64)
+        lengths = np.asarray(lengths, dtype=np.int64)
+        n = rows.size
+        E = self.table[rows, 0]
+        if n == 0:
+            return E
+        constants, rows_builder = self.constant_rows, self.rows
+        E += constants[0]                                                   # bias
+        seq_start = np.cumsum(lengths) - lengths
+        nonempty = lengths > 0
+        if self.spec.first_last:
+            E[seq_start[nonempty]] += constants[1]
+            E[(seq_start + lengths - 1)[nonempty]] += constants[2]
+        line_length = np.repeat(lengths, lengths)
+        position = np.arange(n) - np.repeat(seq_start, lengths)
+        if self.spec.relative_buckets:
+            bucket = position * self.spec.relative_buckets // line_length
+            E += constants[rows_builder.rel_base + bucket]
+        for slot, offset in enumerate(rows_builder.offsets[1:].tolist(), start=1):
+            neighbour = position + offset
+            inside = (neighbour >= 0) & (neighbour < line_length)
+            neighbour_rows = np.where(inside, rows[np.clip(np.arange(n) + offset, 0, n - 1)], self._BOUNDARY)
+            E += self.table[neighbour_rows, slot]
+        return E
+
+
+__all__ = ["FeatureSpec", "FeatureExtractor", "EmissionScorer", "token_types", "WindowOffset", "GROUPS", "FLAGS", "word_shape",
            "collapse_runs", "SPEC_VERSION"]

@@ -16,6 +16,7 @@ from hypothesis import strategies as st
 
 from streamtag.errors import ConfigError, DataError, StreamtagError
 from streamtag.features import (
+    EmissionScorer,
     FeatureExtractor,
     FeatureSpec,
     collapse_runs,
@@ -530,3 +531,70 @@ def test_shipped_spec_matches_reference(batch):
     vocabulary = extractor.fit(batch)
     expected = [sorted(row) for texts, kinds in batch for row in ref_features(texts, kinds, cfg)]
     assert decoded_rows(extractor.transform(batch)[0], vocabulary) == expected
+
+
+# --- emission scores without the matrix (the decoding fast path) ------------------------------------
+# Reference: the sparse product X @ W computed by scipy.sparse on the extractor's CSR matrix (itself
+# checked against the plain reference extractor above).
+
+def _reference_emissions(extractor, batch, weights):
+    matrix, lengths = extractor.transform(batch)
+    return np.asarray(matrix @ weights), lengths
+
+
+def _flat(batch):
+    return [t for texts, _ in batch for t in texts], [k for _, kinds in batch for k in kinds]
+
+
+@SETTINGS
+@given(spec_dicts(), st.lists(batches, min_size=1, max_size=3), st.integers(1, 6), st.integers(0, 2**32 - 1))
+def test_emission_scorer_equals_sparse_product(cfg, batch_list, cache_size, seed):
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    extractor.fit([s for b in batch_list for s in b])
+    weights = np.random.default_rng(seed).normal(size=(extractor.n_features, 3))
+    scorer = EmissionScorer(extractor, weights, cache_size=cache_size)   # tiny: forces fresh starts
+    for batch in batch_list + batch_list:    # the second pass meets whatever the table kept
+        expected, lengths = _reference_emissions(extractor, batch, weights)
+        got = scorer.emissions(scorer.type_rows(*_flat(batch)), lengths)
+        assert got.shape == expected.shape
+        np.testing.assert_allclose(got, expected, rtol=0, atol=1e-9)
+    assert scorer.n_rows <= max(cache_size, max(sum(map(len, t)) for b in batch_list for t, _ in b)) + 1
+
+
+def test_emission_scorer_keeps_a_text_with_two_kinds_apart():
+    # The same text can come with two kinds (e.g. a port number alone or as part of an address);
+    # each kind has its own features, so its own scores.
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    batch = [(["8080", "open", "8080"], ["number", "word", "ident"]), (["8080"], ["ident"])]
+    extractor.fit(batch)
+    weights = np.random.default_rng(3).normal(size=(extractor.n_features, 4))
+    scorer = EmissionScorer(extractor, weights)
+    for sub in ([batch[1]], batch, [batch[0]], batch):
+        expected, lengths = _reference_emissions(extractor, sub, weights)
+        np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(sub)), lengths), expected,
+                                   rtol=0, atol=1e-9)
+
+
+def test_emission_scorer_scores_long_texts_without_keeping_them():
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    long_text = "x" * 300
+    batch = [(["a", long_text, "b"], ["word"] * 3)]
+    extractor.fit(batch)
+    weights = np.random.default_rng(5).normal(size=(extractor.n_features, 2))
+    scorer = EmissionScorer(extractor, weights, cache_size=10)
+    for _ in range(30):    # the long type is scored again each time, and the table stays bounded
+        expected, lengths = _reference_emissions(extractor, batch, weights)
+        np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(batch)), lengths), expected,
+                                   rtol=0, atol=1e-9)
+    assert long_text not in scorer.row_of_text and scorer.n_rows <= 10 + 3
+
+
+def test_emission_scorer_empty_and_bad_input():
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    extractor.fit([(["a"], ["word"])])
+    scorer = EmissionScorer(extractor, np.zeros((extractor.n_features, 3)))
+    assert scorer.emissions(scorer.type_rows([], []), np.zeros(2, dtype=np.int64)).shape == (0, 3)
+    with pytest.raises(DataError):
+        scorer.type_rows(["a"], [])
+    with pytest.raises(ValueError):
+        EmissionScorer(extractor, np.zeros((extractor.n_features + 1, 3)))
