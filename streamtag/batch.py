@@ -2,38 +2,65 @@
 
 `watch`, `replay` and `tag` differ only in where lines come from and where records go; this is
 the part they share, so a line gives the same record whichever command tagged it. No files.
+
+A decoded line is a ``DecodedLine``, or just a ``str`` for a plain line (``decode_lines``: valid
+UTF-8, no controls, so the text to tag is the text to record and there are no flags); both kinds
+may be mixed in one batch.
 """
 
 from __future__ import annotations
 
-from typing import Callable, Sequence
+from typing import Callable, Sequence, Union
 
 from streamtag import records
 from streamtag.decode import DecodedLine
 from streamtag.tagger import TaggedLine, Tagger
 
+Decoded = Union[str, DecodedLine]
 
-def tag_decoded(tagger: Tagger, decoded: Sequence[DecodedLine], review_below: float | None,
+
+def _all_plain(decoded: Sequence[Decoded]) -> bool:
+    return all(kind is str for kind in set(map(type, decoded)))
+
+
+def tag_decoded(tagger: Tagger, decoded: Sequence[Decoded], review_below: float | None,
                 log: Callable[[str], None] | None = None) -> list[TaggedLine]:
     """Tag the text lines of a batch; binary lines get an empty result (recorded, not tagged).
 
     A fault while tagging the batch must not stall a stream: the lines are then tagged one by one,
     and a line that still fails gets an empty result flagged "tag_error".
     """
-    to_tag = [i for i, line in enumerate(decoded) if not line.binary]
-    texts = [decoded[i].tag_text for i in to_tag]
+    if _all_plain(decoded):
+        to_tag = None
+        texts = list(decoded)
+        faithful = texts
+    else:
+        to_tag = [i for i, line in enumerate(decoded) if type(line) is str or not line.binary]
+        texts = [_tag_text(decoded[i]) for i in to_tag]
+        faithful = [_text(decoded[i]) for i in to_tag]
     try:
         tagged = tagger.tag(texts, review_below=review_below)
     except Exception as exc:  # noqa: BLE001 (any defect: fall back, keep the stream moving)
         if log is not None:
             log(f"tagging a batch failed ({type(exc).__name__}: {exc}); tagging its lines one by one")
         tagged = [_tag_one(tagger, text, review_below) for text in texts]
-    results: list[TaggedLine] = [TaggedLine(text=line.text, spans=[], confidence=1.0, n_tokens=0)
-                                 for line in decoded]
+    for result, text in zip(tagged, faithful):
+        result.text = text  # the faithful text; span offsets are the same in both
+    if to_tag is None:
+        return tagged
+    results: list[TaggedLine | None] = [None] * len(decoded)
     for i, result in zip(to_tag, tagged):
-        result.text = decoded[i].text  # the faithful text; span offsets are the same in both
         results[i] = result
-    return results
+    return [result if result is not None else TaggedLine(text=_text(line), spans=[], confidence=1.0, n_tokens=0)
+            for line, result in zip(decoded, results)]
+
+
+def _tag_text(line: Decoded) -> str:
+    return line if type(line) is str else line.tag_text
+
+
+def _text(line: Decoded) -> str:
+    return line if type(line) is str else line.text
 
 
 def _tag_one(tagger: Tagger, text: str, review_below: float | None) -> TaggedLine:
@@ -43,7 +70,7 @@ def _tag_one(tagger: Tagger, text: str, review_below: float | None) -> TaggedLin
         return TaggedLine(text=text, spans=[], confidence=0.0, n_tokens=0, flags=["tag_error"])
 
 
-def encode_batch(decoded: Sequence[DecodedLine], tagged: Sequence[TaggedLine], model_id: str, threshold: float,
+def encode_batch(decoded: Sequence[Decoded], tagged: Sequence[TaggedLine], model_id: str, threshold: float,
                  sources: Sequence[str | None], offsets: Sequence[int | None], line_numbers: Sequence[int | None],
                  read_flags: Sequence[Sequence[str]], want_review: bool = True) -> tuple[bytes, bytes, int]:
     """Records of a batch as (output bytes, review bytes, lines sent to review).
@@ -51,15 +78,23 @@ def encode_batch(decoded: Sequence[DecodedLine], tagged: Sequence[TaggedLine], m
     A line below ``threshold`` is marked for review (binary lines never are); with ``want_review``
     its review record, with reason and runner-up, goes to the review bytes as well.
     """
-    output, review, n_review = [], [], 0
-    for i, (line, result) in enumerate(zip(decoded, tagged)):
-        doubtful = not line.binary and result.confidence < threshold
-        record = records.make_record(result, model_id, doubtful, source=sources[i], offset=offsets[i],
-                                     line=line_numbers[i], flags=list(read_flags[i]) + line.flags,
-                                     fields=line.fields)
-        output.append(record)
-        if doubtful:
-            n_review += 1
-            if want_review:
-                review.append(records.make_review_record(record, result, threshold))
-    return records.encode(output), records.encode(review), n_review
+    if _all_plain(decoded):
+        reviews = [result.confidence < threshold for result in tagged]
+        flags, fields = read_flags, None
+    else:
+        reviews, flags, fields = [], [], []
+        for line, result, read in zip(decoded, tagged, read_flags):
+            if type(line) is str:
+                reviews.append(result.confidence < threshold)
+                flags.append(read)
+                fields.append(None)
+            else:
+                reviews.append(not line.binary and result.confidence < threshold)
+                flags.append(list(read) + line.flags)
+                fields.append(line.fields)
+    output = records.make_records(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields)
+    review = []
+    if want_review:
+        review = [records.make_review_record(record, result, threshold)
+                  for record, result, doubtful in zip(output, tagged, reviews) if doubtful]
+    return records.encode(output), records.encode(review), sum(reviews)

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import errno
+import operator
 import os
 import queue
 import signal
@@ -35,7 +36,7 @@ import orjson
 from streamtag.batch import encode_batch, tag_decoded
 from streamtag.checkpoint import State, fsync_directory, load_state, recover_outputs, save_state, write_file_atomically
 from streamtag.config import WatchConfig, load_watch_config
-from streamtag.decode import decode_json, decode_text
+from streamtag.decode import decode_json, decode_lines
 from streamtag.errors import ConfigError, ModelError, StreamtagError
 from streamtag.follow import ChangeWatcher, Follower
 from streamtag.model import Model, default_model_path, load_model
@@ -52,6 +53,8 @@ WAIT_SLICE_SECONDS = 0.1  # longest sleep between looks at the signal flags
 MODEL_PROBE_LINE = "gatewarden[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
 
 Log = Callable[[str], None]
+# Columns of a batch of RawLines, taken in C loops (map) rather than one comprehension each.
+_DATA, _PATH, _START, _LINE_NO, _FLAGS = map(operator.attrgetter, ("data", "path", "start", "line_no", "flags"))
 
 
 def stderr_log(message: str) -> None:
@@ -167,10 +170,10 @@ class LatencyHistogram:
         self.counts = np.zeros(self.N_BUCKETS, dtype=np.int64)
         self._log_ratio = np.log(self.RATIO)
 
-    def add(self, latencies: np.ndarray) -> None:
-        """latencies (n,) seconds."""
+    def add(self, latencies: np.ndarray, counts: np.ndarray | None = None) -> None:
+        """latencies (n,) seconds; ``counts`` (n,) how many lines had each latency (default: one each)."""
         index = np.floor(np.log(np.maximum(latencies, self.LOW) / self.LOW) / self._log_ratio).astype(np.int64)
-        np.add.at(self.counts, np.minimum(index, self.N_BUCKETS - 1), 1)
+        np.add.at(self.counts, np.minimum(index, self.N_BUCKETS - 1), 1 if counts is None else counts)
 
     def percentile(self, q: float) -> float | None:
         total = int(self.counts.sum())
@@ -202,10 +205,12 @@ class Stats:
 
 @dataclass(slots=True)
 class _Pending:
-    """Lines read but not yet written, with the time each was read (for latency)."""
+    """Lines read but not yet written, with the time each read happened and how many lines it gave
+    (for latency: one pair per read, not one time per line)."""
 
     lines: list = field(default_factory=list)
     read_at: list = field(default_factory=list)
+    read_counts: list = field(default_factory=list)
     started: float = 0.0
 
     def __len__(self) -> int:
@@ -394,7 +399,8 @@ class Daemon:
             if not len(pending):
                 pending.started = read_time
             pending.lines.extend(lines)
-            pending.read_at.extend([read_time] * len(lines))
+            pending.read_at.append(read_time)
+            pending.read_counts.append(len(lines))
         return lines
 
     def _finish(self, pending: _Pending) -> int:
@@ -453,7 +459,7 @@ class Daemon:
                 self._sleep(delay)
                 delay = min(delay * 2, BACKOFF_CAP_SECONDS)
         written_at = self.clock()
-        self.stats.latency.add(written_at - np.asarray(pending.read_at))
+        self.stats.latency.add(written_at - np.asarray(pending.read_at), np.asarray(pending.read_counts))
         self.stats.lines += len(pending)
         self.stats.review += n_review
         self.stats.batches += 1
@@ -497,15 +503,16 @@ class Daemon:
     def _encode_batch(self, raw_lines: list) -> tuple[bytes, bytes, int]:
         """RawLines -> (output bytes, review bytes, number of review records)."""
         config = self.config
+        datas = list(map(_DATA, raw_lines))
         if config.input_format == "json":
-            decoded = [decode_json(raw.data, config.text_field) for raw in raw_lines]
+            decoded = [decode_json(data, config.text_field) for data in datas]
         else:
-            decoded = [decode_text(raw.data) for raw in raw_lines]
+            decoded = decode_lines(datas)
         tagged = tag_decoded(self.tagger, decoded, config.review_threshold, self.log)
         return encode_batch(
             decoded, tagged, self.tagger.model_id, config.review_threshold,
-            sources=[raw.path for raw in raw_lines], offsets=[raw.start for raw in raw_lines],
-            line_numbers=[raw.line_no for raw in raw_lines], read_flags=[raw.flags for raw in raw_lines],
+            sources=list(map(_PATH, raw_lines)), offsets=list(map(_START, raw_lines)),
+            line_numbers=list(map(_LINE_NO, raw_lines)), read_flags=list(map(_FLAGS, raw_lines)),
         )
 
     # -- model swap ----------------------------------------------------------------------------

@@ -8,8 +8,9 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Sequence
 
+import numpy as np
 import orjson
 
 # A line is "binary" when more than this share of its characters are control characters or
@@ -27,6 +28,12 @@ _ESCAPE_SEQUENCE = re.compile(
 )
 # C0 controls except TAB (white space), DEL, and the C1 controls U+0080..U+009F.
 _CONTROL = re.compile(r"[\x00-\x08\x0a-\x1f\x7f-\x9f]")
+# The same characters as UTF-8 bytes, for scanning a batch before decoding it: C0 and DEL are single
+# bytes, and the C1 controls are C2 80..C2 9F (RFC 3629 section 3: bytes below 0x80 never occur
+# inside a multi-byte sequence, so a byte scan of valid UTF-8 finds exactly these characters).
+_C1_CONTROL_UTF8 = re.compile(rb"\xc2[\x80-\x9f]")
+_TAB = 0x09
+_SPACE = 0x20
 
 
 @dataclass(slots=True)
@@ -56,6 +63,45 @@ def decode_text(data: bytes) -> DecodedLine:
         text = data.decode("utf-8", errors="replace")
         flags = ["invalid_utf8"]
     return _sanitize(text, flags)
+
+
+def decode_lines(datas: Sequence[bytes]) -> list[str | DecodedLine]:
+    """``decode_text`` for a batch of lines, with a plain ``str`` standing for a plain line.
+
+    A line that is valid UTF-8 without control characters decodes to ``DecodedLine(text, text, [])``;
+    it comes back as just its text (no flags, nothing blanked, not binary), which saves building an
+    object per line. Every other line comes back as ``decode_text`` gives it. Most batches are all
+    plain: they cost one strict decode per line and one scan of the joined bytes.
+    """
+    try:
+        texts = list(map(bytes.decode, datas))  # strict UTF-8
+    except UnicodeDecodeError:
+        return [_decode_one(data) for data in datas]
+    if not _has_control_bytes(b"".join(datas)):
+        return texts
+    return [_sanitize(text, []) if _CONTROL.search(text) else text for text in texts]
+
+
+def _decode_one(data: bytes) -> str | DecodedLine:
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError:
+        return decode_text(data)
+    return _sanitize(text, []) if _CONTROL.search(text) else text
+
+
+def _has_control_bytes(data: bytes) -> bool:
+    """True if the UTF-8 ``data`` may hold a character matched by ``_CONTROL``.
+
+    A vectorised byte count: the regular expression scans about 6 ns per character, this well under 1.
+    """
+    codes = np.frombuffer(data, dtype=np.uint8)
+    below_space = np.count_nonzero(codes < _SPACE)
+    if below_space and below_space != np.count_nonzero(codes == _TAB):
+        return True
+    if b"\x7f" in data:
+        return True
+    return b"\xc2" in data and _C1_CONTROL_UTF8.search(data) is not None
 
 
 def _sanitize(text: str, flags: list[str]) -> DecodedLine:

@@ -47,10 +47,8 @@ import queue
 import secrets
 import stat
 import time
-from collections import deque
-from dataclasses import dataclass
 from itertools import accumulate, repeat
-from typing import Callable, Iterable
+from typing import Callable, Iterable, NamedTuple
 
 HEAD_BYTES = 1024  # how much of a file's start identifies it (and reveals a rewrite)
 CHUNK_BYTES = 1 << 20  # one pread; large reads keep the per-line cost low
@@ -65,9 +63,12 @@ FLAG_NO_NEWLINE = "no_newline"
 _log = logging.getLogger("streamtag.follow")
 
 
-@dataclass(frozen=True, slots=True)
-class RawLine:
-    """One input line as found in a file (bytes, not yet decoded)."""
+class RawLine(NamedTuple):
+    """One input line as found in a file (bytes, not yet decoded). Immutable.
+
+    A named tuple rather than a frozen dataclass: a batch of them is built in one C loop
+    (``_make_lines``), about twice as fast as filling a frozen dataclass's slots.
+    """
 
     file_key: str  # "DEV:INO:GEN": identity of the file and of its current generation
     path: str  # the file's path as last seen
@@ -652,14 +653,11 @@ class Follower:
 
 _PLUS_NEWLINE = (1).__add__  # a C-level callable: no Python frame per line
 
-# Building RawLine through its generated __init__ costs a Python frame and seven
-# object.__setattr__ calls per line (frozen dataclass): measured at ~180-400k lines/s, the
-# follower's bottleneck. Filling the slots column by column with the slot descriptors' own
-# setters runs entirely in C loops and measured ~3x faster. The objects are ordinary RawLine
-# instances (equal, hashable, still frozen against later assignment).
-_NEW_OBJECT = object.__new__
-_SLOT_SETTERS = tuple(RawLine.__dict__[name].__set__ for name in RawLine.__slots__)
-assert RawLine.__slots__ == ("file_key", "path", "start", "end", "data", "line_no", "flags")
+# Building RawLine through its generated __new__ costs a Python frame per line. tuple.__new__ over
+# the zipped columns runs entirely in C loops (measured 0.54 us per line against 1.1 us for
+# filling a frozen dataclass's slots column by column, itself ~3x faster than its __init__).
+_NEW_TUPLE = tuple.__new__
+assert RawLine._fields == ("file_key", "path", "start", "end", "data", "line_no", "flags")
 
 
 def _make_lines(
@@ -667,11 +665,8 @@ def _make_lines(
     flags: Iterable[tuple[str, ...]],
 ) -> list[RawLine]:
     n = len(data)
-    lines = list(map(_NEW_OBJECT, repeat(RawLine, n)))
-    columns = (repeat(key, n), repeat(path, n), starts, ends, data, range(first_line_no, first_line_no + n), flags)
-    for setter, values in zip(_SLOT_SETTERS, columns):
-        deque(map(setter, lines, values), maxlen=0)
-    return lines
+    rows = zip(repeat(key, n), repeat(path, n), starts, ends, data, range(first_line_no, first_line_no + n), flags)
+    return list(map(_NEW_TUPLE, repeat(RawLine, n), rows))
 
 
 def _same_directory_files(path: str) -> list[str]:

@@ -149,6 +149,23 @@ def test_latency_percentiles_match_numpy():
         assert abs(histogram.percentile(q) / reference - 1) < 0.011  # buckets are 1 % wide
 
 
+def test_latency_counts_stand_for_repeated_values():
+    # One (latency, count) pair per read instead of one latency per line: numpy.repeat is the
+    # reference for what the pairs stand for, numpy.percentile for the percentiles.
+    import numpy as np
+
+    rng = np.random.default_rng(4)
+    values = rng.lognormal(mean=-4, sigma=1, size=300)
+    counts = rng.integers(1, 50, size=300)
+    paired, repeated = LatencyHistogram(), LatencyHistogram()
+    paired.add(values, counts)
+    repeated.add(np.repeat(values, counts))
+    assert np.array_equal(paired.counts, repeated.counts)
+    for q in (50, 99):
+        reference = np.percentile(np.repeat(values, counts), q, method="inverted_cdf")
+        assert abs(paired.percentile(q) / reference - 1) < 0.011  # buckets are 1 % wide
+
+
 # -- end to end helpers -----------------------------------------------------------------------------
 
 
