@@ -106,16 +106,9 @@ class _Packing:
     """
 
     def __init__(self, lengths: np.ndarray, n_tokens: int | None = None):
-        lengths = np.asarray(lengths)
-        if lengths.ndim != 1:
-            raise ValueError(f"lengths must be one-dimensional, got shape {lengths.shape}")
-        lengths = lengths.astype(np.int64, copy=False)
-        if lengths.size and lengths.min() < 0:
-            raise ValueError("lengths must be non-negative")
+        lengths = _check_lengths(lengths, n_tokens)
         n_seqs = lengths.size
         total = int(lengths.sum())
-        if n_tokens is not None and n_tokens != total:
-            raise ValueError(f"lengths sum to {total} but there are {n_tokens} tokens")
         self.lengths = lengths
         self.n_tokens = total
         self.offsets = np.zeros(n_seqs, dtype=np.int64)
@@ -166,12 +159,31 @@ class _Packing:
         return np.arange(self.n_tokens - step.size, self.n_tokens) - self.batch_sizes[step - 1]
 
 
-def _check_inputs(E: np.ndarray, lengths: np.ndarray, trans: np.ndarray) -> tuple[np.ndarray, _Packing]:
+def _check_lengths(lengths, n_tokens: int | None = None) -> np.ndarray:
+    """lengths as a one-dimensional int64 array of non-negative values summing to n_tokens (if given)."""
+    lengths = np.asarray(lengths)
+    if lengths.ndim != 1:
+        raise ValueError(f"lengths must be one-dimensional, got shape {lengths.shape}")
+    lengths = lengths.astype(np.int64, copy=False)
+    if lengths.size and lengths.min() < 0:
+        raise ValueError("lengths must be non-negative")
+    total = int(lengths.sum())
+    if n_tokens is not None and n_tokens != total:
+        raise ValueError(f"lengths sum to {total} but there are {n_tokens} tokens")
+    return lengths
+
+
+def _check_emissions(E, trans) -> np.ndarray:
     E = np.asarray(E, dtype=np.float64)
     if E.ndim != 2:
         raise ValueError(f"emissions must be (N, L), got shape {E.shape}")
     if np.shape(trans) != (E.shape[1], E.shape[1]):
         raise ValueError(f"transitions must be ({E.shape[1]}, {E.shape[1]}), got {np.shape(trans)}")
+    return E
+
+
+def _check_inputs(E: np.ndarray, lengths: np.ndarray, trans: np.ndarray) -> tuple[np.ndarray, _Packing]:
+    E = _check_emissions(E, trans)
     return E, _Packing(lengths, E.shape[0])
 
 
@@ -408,19 +420,14 @@ def viterbi(E, lengths, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
     scores (B,) (0 for an empty sequence, -inf if no path has a finite score). Ties go to the lowest
     label index, so the result is deterministic.
     """
-    E, pk = _check_inputs(E, lengths, trans)
+    E = _check_emissions(E, trans)
     kernels = _compiled_kernels(E)
     if kernels is None:
+        pk = _Packing(lengths, E.shape[0])
         labels, scores = _viterbi_packed(pk.to_packed(E), pk, trans, start, end)
         return labels[pk.packed_of_flat], scores
-    pack_emissions, _, viterbi_packed, _ = kernels
-    trans, start, end = _kernel_weights(E, trans, start, end)
-    Ep, _ = pack_emissions(_writable(E), pk.flat_of_packed)
-    labels, final_scores = viterbi_packed(Ep, pk.batch_sizes, pk.step_start, pk.last_packed, pk.flat_of_packed,
-                                          trans, start, end)
-    scores = np.zeros(pk.lengths.size)
-    scores[pk.nonempty] = final_scores
-    return labels, scores
+    lengths = _writable(_check_lengths(lengths, E.shape[0]))
+    return kernels[2](_writable(E), lengths, *_kernel_weights(E, trans, start, end))
 
 
 def _viterbi_packed(Ep: np.ndarray, pk: _Packing, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
@@ -465,11 +472,12 @@ def decode(E, lengths, trans, start, end) -> Decoded:
     tagger's hot path packs and transposes the batch once instead of three times and computes N
     marginals instead of N x L. E (N, L), lengths (B,), trans (L, L), start (L,), end (L,) (masked).
     """
-    E, pk = _check_inputs(E, lengths, trans)
+    E = _check_emissions(E, trans)
     kernels = _compiled_kernels(E)
     if kernels is None:
-        return _decode_numpy(E, pk, trans, start, end)
-    return _decode_compiled(kernels, E, pk, *_kernel_weights(E, trans, start, end))
+        return _decode_numpy(E, _Packing(lengths, E.shape[0]), trans, start, end)
+    lengths = _writable(_check_lengths(lengths, E.shape[0]))
+    return _decode_compiled(kernels, _writable(E), lengths, *_kernel_weights(E, trans, start, end))
 
 
 def _decode_numpy(E: np.ndarray, pk: _Packing, trans, start, end) -> Decoded:
@@ -486,16 +494,14 @@ def _decode_numpy(E: np.ndarray, pk: _Packing, trans, start, end) -> Decoded:
     return Decoded(labels[pk.packed_of_flat], scores, fb, confidence[pk.packed_of_flat])
 
 
-def _decode_compiled(kernels, E: np.ndarray, pk: _Packing, trans, start, end) -> Decoded:
+def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, end) -> Decoded:
     """`decode` with the compiled kernels: scaled forward-backward, exact redo of suspect sequences."""
-    pack_emissions, decode_packed, _, exact_forward_backward = kernels
-    E = _writable(E)
-    Ep, peak = pack_emissions(E, pk.flat_of_packed)
+    row_peaks, decode_flat, _, exact_forward_backward = kernels
+    peak = row_peaks(E)
     with np.errstate(invalid="ignore"):  # a token without a finite emission: the kernel flags it
-        emission_exp = np.exp(Ep - peak)
-    labels, final_scores, log_alpha, alpha_shift, log_beta, beta_shift, final_log_z, suspect = decode_packed(
-        Ep, emission_exp, peak, pk.batch_sizes, pk.step_start, pk.last_packed, pk.flat_of_packed,
-        pk.seq_of_token[pk.flat_of_packed], pk.lengths.size, trans, start, end)
+        emission_exp = np.exp(E - peak[:, None])
+    labels, scores, log_alpha, alpha_shift, log_beta, beta_shift, log_z, suspect = decode_flat(
+        E, emission_exp, peak, lengths, trans, start, end)
     # The kernel returns scaled values; their log is taken here in one vectorised pass (numpy's SIMD
     # log measured about 10x faster than a scalar log per entry in the kernel). Exact zeros give
     # -inf; suspect sequences are overwritten below.
@@ -504,20 +510,17 @@ def _decode_compiled(kernels, E: np.ndarray, pk: _Packing, trans, start, end) ->
         log_alpha += alpha_shift[:, None]
         np.log(log_beta, out=log_beta)
         log_beta += beta_shift[:, None]
-    log_z = np.zeros(pk.lengths.size)
-    log_z[pk.nonempty] = final_log_z
-    scores = np.zeros(pk.lengths.size)
-    scores[pk.nonempty] = final_scores
     redo = np.flatnonzero(suspect)
     if redo.size:
-        exact_forward_backward(E, pk.offsets, _writable(pk.lengths), redo, trans, start, end, log_alpha,
-                               log_beta, log_z)
-    tokens = np.arange(pk.n_tokens)
-    token_log_z = log_z[pk.seq_of_token]
-    token_log_z = np.where(np.isfinite(token_log_z), token_log_z, np.inf)  # no finite path: confidence 0
+        offsets = np.zeros(lengths.size, dtype=np.int64)
+        np.cumsum(lengths[:-1], out=offsets[1:])
+        exact_forward_backward(E, offsets, lengths, redo, trans, start, end, log_alpha, log_beta, log_z)
+    tokens = np.arange(E.shape[0])
+    token_log_z = np.repeat(log_z, lengths)
+    token_log_z[~np.isfinite(token_log_z)] = np.inf  # no finite path: confidence 0, not NaN
     confidence = np.exp(log_alpha[tokens, labels] + log_beta[tokens, labels] - token_log_z)
     np.minimum(confidence, 1.0, out=confidence)  # rounding can overshoot 1 by an ulp or two
-    return Decoded(labels, scores, ForwardBackward(log_alpha, log_beta, log_z, pk.lengths), confidence)
+    return Decoded(labels, scores, ForwardBackward(log_alpha, log_beta, log_z, lengths), confidence)
 
 
 def _compiled_kernels(E: np.ndarray):

@@ -1,12 +1,13 @@
 """Compiled (numba) Viterbi and forward-backward for the decode hot path; same results as crf.py's numpy code.
 
-The kernels take the batch in crf's packed layout (time-major, label-major (L, N): the columns of time
-step t are the sequences still running, longest first) and run the per-step loops of `crf` in compiled
-code: for each next label, for each allowed previous label, one pass over a tile of the step's
-columns. The innermost loop thus runs over sequences of the batch, which the compiler turns into SIMD
-code, where numpy would pay a call and a temporary per small block. (A first version walked one
-sequence at a time with the label loop innermost; with 19 labels that loop does not vectorise and was
-measured 3-4x slower than this layout.)
+The kernels take a flat batch (E (N, L), lengths (B,)) and cut it into chunks of about _CHUNK_TOKENS
+tokens. Each chunk is put in crf's packed layout (time-major, label-major (L, n): the columns of time
+step t are the chunk's sequences still running, longest first) and the per-step loops of `crf` run
+in compiled code: for each next label, for each allowed previous label, one pass over a tile of the
+step's columns. The innermost loop thus runs over sequences, which the compiler turns into SIMD code,
+where numpy pays a call and a temporary per small block. (Measured alternatives: walking one sequence
+at a time with the 19-label loop innermost does not vectorise and was 3-4x slower; one chunk for a
+whole batch of 1000 lines does not stay in cache and was 15-30% slower.)
 
 Semantics are those of `crf.viterbi`, `crf.forward_backward` and `crf.decode` (see `crf.ForwardBackward`).
 Viterbi sums in the numpy code's order and breaks ties the same way (the first, lowest label index
@@ -39,6 +40,9 @@ _TINY = 1e-290
 _NEG_INF = -np.inf
 # Columns per tile: (L, _TILE) blocks of the previous step stay in the first-level cache.
 _TILE = 128
+# Tokens per chunk of sequences: a chunk's packed arrays (3 x L x chunk doubles) stay in the
+# second-level cache; a whole batch's did not and made the kernels memory-bound.
+_CHUNK_TOKENS = 1024
 # error_model "numpy": a division by zero gives inf (checked afterwards) instead of a test per division.
 _OPTIONS = {"nogil": True, "error_model": "numpy"}
 
@@ -73,24 +77,94 @@ def _exp_shifted(values):
 
 
 @_jit_cached
-def pack_emissions(E, flat_of_packed):
-    """E (N, L) flat -> Ep (L, N) packed (column c holds token flat_of_packed[c]) and its column maxima (N,).
-
-    One gather-and-transpose pass; numpy's fancy indexing plus a blocked transpose measured several
-    times slower for 19 labels.
-    """
+def row_peaks(E):
+    """(N,) maximum of each row of E (N, L), -inf for a row of -inf; NaN entries are skipped here
+    (they make the scaled sums NaN, which the kernels catch)."""
     n_tokens, n_labels = E.shape
-    Ep = np.empty((n_labels, n_tokens))
     peak = np.empty(n_tokens)
-    for col in range(n_tokens):
-        row = flat_of_packed[col]
+    for row in range(n_tokens):
         top = _NEG_INF
         for j in range(n_labels):
             value = E[row, j]
-            Ep[j, col] = value
             top = value if value > top else top
-        peak[col] = top  # a NaN emission is not seen here; it makes the scaled sums NaN, which are caught
-    return Ep, peak
+        peak[row] = top
+    return peak
+
+
+# ----------------------------------------------------------------------------------------------------
+# Chunks in the packed layout
+
+
+@_jit
+def _chunk_end(lengths, first_seq):
+    """End (exclusive) of the chunk starting at sequence first_seq: at least one sequence, at most
+    _CHUNK_TOKENS tokens otherwise."""
+    end = first_seq + 1
+    tokens = lengths[first_seq]
+    while end < lengths.size and tokens + lengths[end] <= _CHUNK_TOKENS:
+        tokens += lengths[end]
+        end += 1
+    return end
+
+
+@_jit
+def _chunk_layout(offsets, lengths, first_seq, end_seq):
+    """Packed layout of sequences first_seq..end_seq-1 (crf._Packing, for one chunk).
+
+    Sequences sorted by decreasing length; column step_start[t] + r holds time step t of the r-th.
+    Returns batch_sizes (T,), step_start (T + 1,), rows (n,) the flat row of each column, seq_of_col
+    (n,), last_cols (S,) the last column of each non-empty sequence and last_seqs (S,) its index.
+    The order of sequences does not change any result: each column depends on its own sequence only.
+    """
+    count = end_seq - first_seq
+    order = np.argsort(-lengths[first_seq:end_seq], kind="mergesort")
+    max_len = lengths[first_seq + order[0]]
+    batch_sizes = np.zeros(max_len, dtype=np.int64)
+    n_nonempty = 0
+    for r in range(count):
+        n = lengths[first_seq + order[r]]
+        if n > 0:
+            n_nonempty += 1
+        for t in range(n):
+            batch_sizes[t] += 1
+    step_start = np.zeros(max_len + 1, dtype=np.int64)
+    for t in range(max_len):
+        step_start[t + 1] = step_start[t] + batch_sizes[t]
+    n_cols = step_start[max_len]
+    rows = np.empty(n_cols, dtype=np.int64)
+    seq_of_col = np.empty(n_cols, dtype=np.int64)
+    last_cols = np.empty(n_nonempty, dtype=np.int64)
+    last_seqs = np.empty(n_nonempty, dtype=np.int64)
+    for r in range(n_nonempty):  # non-empty sequences come first in the sorted order
+        seq = first_seq + order[r]
+        n = lengths[seq]
+        for t in range(n):
+            col = step_start[t] + r
+            rows[col] = offsets[seq] + t
+            seq_of_col[col] = seq
+        last_cols[r] = step_start[n - 1] + r
+        last_seqs[r] = seq
+    return batch_sizes, step_start, rows, seq_of_col, last_cols, last_seqs
+
+
+@_jit
+def _gather(flat, rows):
+    """flat (N, L) rows -> (L, n) packed columns: packed[:, c] = flat[rows[c]]."""
+    n_labels = flat.shape[1]
+    packed = np.empty((n_labels, rows.size))
+    for col in range(rows.size):
+        row = rows[col]
+        for j in range(n_labels):
+            packed[j, col] = flat[row, j]
+    return packed
+
+
+@_jit
+def _offsets(lengths):
+    offsets = np.zeros(lengths.size, dtype=np.int64)
+    for b in range(1, lengths.size):
+        offsets[b] = offsets[b - 1] + lengths[b - 1]
+    return offsets
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -160,25 +234,36 @@ def _viterbi_backtrace(delta, batch_sizes, step_start, last_packed, trans, end, 
 
 
 @_jit
-def _viterbi(Ep, batch_sizes, step_start, last_packed, flat_of_packed, trans, start, end, delta):
-    """Labels (N,) in flat order and path scores (S,); delta (L, N) is scratch."""
-    n_tokens = Ep.shape[1]
-    labels = np.zeros(n_tokens, dtype=np.int64)
-    final_scores = np.empty(last_packed.size)
+def _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end, delta, labels_out):
+    """Viterbi on one packed chunk: writes labels_out[rows[c]] (flat (N,)), returns scores (S,) in
+    last_cols' order. delta (L, n) is scratch."""
+    labels = np.zeros(Ep.shape[1], dtype=np.int64)
+    final_scores = np.empty(last_cols.size)
     _viterbi_forward(Ep, batch_sizes, step_start, trans, start, delta)
-    _viterbi_backtrace(delta, batch_sizes, step_start, last_packed, trans, end, labels, final_scores)
-    flat_labels = np.empty(n_tokens, dtype=np.int64)
-    for col in range(n_tokens):
-        flat_labels[flat_of_packed[col]] = labels[col]
-    return flat_labels, final_scores
+    _viterbi_backtrace(delta, batch_sizes, step_start, last_cols, trans, end, labels, final_scores)
+    for col in range(rows.size):
+        labels_out[rows[col]] = labels[col]
+    return final_scores
 
 
 @_jit_cached
-def viterbi_packed(Ep, batch_sizes, step_start, last_packed, flat_of_packed, trans, start, end):
-    """Best paths: Ep (L, N) packed -> labels (N,) int64 in flat order, scores (S,) of the non-empty
-    sequences (in last_packed's order)."""
-    return _viterbi(Ep, batch_sizes, step_start, last_packed, flat_of_packed, trans, start, end,
-                    np.empty(Ep.shape))
+def viterbi_flat(E, lengths, trans, start, end):
+    """Best paths: E (N, L) flat, lengths (B,) -> labels (N,) int64, scores (B,) (0 if empty)."""
+    n_tokens = E.shape[0]
+    labels = np.zeros(n_tokens, dtype=np.int64)
+    scores = np.zeros(lengths.size)
+    offsets = _offsets(lengths)
+    first_seq = 0
+    while first_seq < lengths.size:
+        end_seq = _chunk_end(lengths, first_seq)
+        batch_sizes, step_start, rows, _, last_cols, last_seqs = _chunk_layout(offsets, lengths, first_seq, end_seq)
+        Ep = _gather(E, rows)
+        final_scores = _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end,
+                                np.empty(Ep.shape), labels)
+        for k in range(last_seqs.size):
+            scores[last_seqs[k]] = final_scores[k]
+        first_seq = end_seq
+    return labels, scores
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -360,52 +445,64 @@ def _unpack(packed, shift, flat_of_packed, flat, flat_shift):
 
 
 @_jit_cached
-def decode_packed(Ep, emission_exp, peak, batch_sizes, step_start, last_packed, flat_of_packed, seq_of_col,
-                  n_seqs, trans, start, end):
-    """Viterbi and scaled forward-backward over a packed batch.
+def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
+    """Viterbi and scaled forward-backward over a flat batch, chunk by chunk in the packed layout.
 
-    Ep (L, N) packed emissions, emission_exp (L, N) = exp(Ep - peak), peak (N,) the per-token maximum;
-    batch_sizes (T,), step_start (T + 1,), last_packed (S,) the last column of each non-empty sequence,
-    flat_of_packed (N,) the flat token of each column, seq_of_col (N,) its sequence, n_seqs B;
-    trans (L, L), start (L,), end (L,) masked.
-    Returns, in flat order: labels (N,), then path scores (S,), alpha (N, L) and alpha_shift (N,) with
-    log_alpha = log(alpha) + alpha_shift[:, None], likewise beta and beta_shift, log Z (S,), and
-    suspect (B,) bool: sequences whose scaled values are not trustworthy (to redo exactly).
+    E (N, L) emissions, emission_exp (N, L) = exp(E - peak[:, None]), peak (N,) = `row_peaks(E)`,
+    lengths (B,); trans (L, L), start (L,), end (L,) masked.
+    Returns labels (N,), scores (B,), alpha (N, L) and alpha_shift (N,) with log_alpha = log(alpha) +
+    alpha_shift[:, None], likewise beta and beta_shift, log Z (B,), and suspect (B,) bool: sequences
+    whose scaled values are not trustworthy (redo them with `exact_forward_backward`). Empty sequences
+    get score 0 and log Z 0.
     """
-    n_labels, n_tokens = Ep.shape
-    work = np.empty((n_labels, n_tokens))  # Viterbi scores, then alpha, then beta (packed)
-    labels, final_scores = _viterbi(Ep, batch_sizes, step_start, last_packed, flat_of_packed, trans, start,
-                                    end, work)
-    trans_exp, trans_shift = _exp_shifted(trans)
-    start_exp, start_shift = _exp_shifted(start)
-    end_exp, end_shift = _exp_shifted(end)
+    n_tokens, n_labels = E.shape
+    labels = np.zeros(n_tokens, dtype=np.int64)
+    scores = np.zeros(lengths.size)
+    log_z = np.zeros(lengths.size)
+    suspect = np.zeros(lengths.size, dtype=np.bool_)
     alpha_flat = np.empty((n_tokens, n_labels))
     beta_flat = np.empty((n_tokens, n_labels))
     alpha_shift_flat = np.empty(n_tokens)
     beta_shift_flat = np.empty(n_tokens)
-    shifts = np.empty(n_tokens)
-    suspect = np.zeros(n_seqs, dtype=np.bool_)
+    trans_exp, trans_shift = _exp_shifted(trans)
+    start_exp, start_shift = _exp_shifted(start)
+    end_exp, end_shift = _exp_shifted(end)
     sums = np.empty((n_labels, _TILE))
     weighted = np.empty((n_labels, _TILE))
     totals = np.empty(_TILE)
     lows = np.empty(_TILE)
-    _scaled_forward(Ep, emission_exp, peak, batch_sizes, step_start, seq_of_col, trans, trans_exp, trans_shift,
-                    start, start_exp, start_shift, work, shifts, suspect, sums, totals, lows)
-    log_z = np.empty(last_packed.size)
-    for k in range(last_packed.size):
-        col = last_packed[k]
-        total = 0.0
-        for j in range(n_labels):
-            total += work[j, col] * end_exp[j]
-        if not (_TINY <= total < np.inf):
-            suspect[seq_of_col[col]] = True
-            total = 1.0
-        log_z[k] = shifts[col] + end_shift + np.log(total)
-    _unpack(work, shifts, flat_of_packed, alpha_flat, alpha_shift_flat)
-    _scaled_backward(Ep, emission_exp, peak, batch_sizes, step_start, last_packed, seq_of_col, trans, trans_exp,
-                     trans_shift, end, end_exp, end_shift, work, shifts, suspect, sums, weighted, totals, lows)
-    _unpack(work, shifts, flat_of_packed, beta_flat, beta_shift_flat)
-    return labels, final_scores, alpha_flat, alpha_shift_flat, beta_flat, beta_shift_flat, log_z, suspect
+    offsets = _offsets(lengths)
+    first_seq = 0
+    while first_seq < lengths.size:
+        end_seq = _chunk_end(lengths, first_seq)
+        batch_sizes, step_start, rows, seq_of_col, last_cols, last_seqs = _chunk_layout(
+            offsets, lengths, first_seq, end_seq)
+        first_seq = end_seq
+        if rows.size == 0:
+            continue
+        Ep = _gather(E, rows)
+        factors = _gather(emission_exp, rows)
+        peaks = peak[rows]
+        work = np.empty(Ep.shape)  # Viterbi scores, then alpha, then beta of this chunk
+        shifts = np.empty(rows.size)
+        final_scores = _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end, work, labels)
+        _scaled_forward(Ep, factors, peaks, batch_sizes, step_start, seq_of_col, trans, trans_exp, trans_shift,
+                        start, start_exp, start_shift, work, shifts, suspect, sums, totals, lows)
+        for k in range(last_cols.size):
+            col, seq = last_cols[k], last_seqs[k]
+            scores[seq] = final_scores[k]
+            total = 0.0
+            for j in range(n_labels):
+                total += work[j, col] * end_exp[j]
+            if not (_TINY <= total < np.inf):
+                suspect[seq] = True
+                total = 1.0
+            log_z[seq] = shifts[col] + end_shift + np.log(total)
+        _unpack(work, shifts, rows, alpha_flat, alpha_shift_flat)
+        _scaled_backward(Ep, factors, peaks, batch_sizes, step_start, last_cols, seq_of_col, trans, trans_exp,
+                         trans_shift, end, end_exp, end_shift, work, shifts, suspect, sums, weighted, totals, lows)
+        _unpack(work, shifts, rows, beta_flat, beta_shift_flat)
+    return labels, scores, alpha_flat, alpha_shift_flat, beta_flat, beta_shift_flat, log_z, suspect
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -465,39 +562,34 @@ def exact_forward_backward(E, offsets, lengths, seqs, trans, start, end, log_alp
 _LOAD_LOCK = threading.Lock()
 
 
-def _warm_up(pack, decode, viterbi, exact) -> None:
+def _warm_up(peaks, decode, viterbi, exact) -> None:
     """Compile (or load from the cache) the one signature crf uses, on a tiny batch."""
     E = np.zeros((3, 2))
-    order = np.array([0, 2, 1], dtype=np.int64)
-    Ep, peak = pack(E, order)
-    sizes = np.array([2, 1], dtype=np.int64)
-    steps = np.array([0, 2, 3], dtype=np.int64)
-    last = np.array([2, 1], dtype=np.int64)
-    seq_of_col = np.array([0, 1, 0], dtype=np.int64)
+    lengths = np.array([2, 0, 1], dtype=np.int64)
     square, vector = np.zeros((2, 2)), np.zeros(2)
-    decode(Ep, np.ones((2, 3)), peak, sizes, steps, last, order, seq_of_col, 3, square, vector, vector)
-    viterbi(Ep, sizes, steps, last, order, square, vector, vector)
-    lengths = np.array([2, 1, 0], dtype=np.int64)
-    exact(E, np.array([0, 2, 3], dtype=np.int64), lengths, np.array([0, 1, 2], dtype=np.int64),
+    peak = peaks(E)
+    decode(E, np.ones((3, 2)), peak, lengths, square, vector, vector)
+    viterbi(E, lengths, square, vector, vector)
+    exact(E, np.array([0, 2, 2], dtype=np.int64), lengths, np.array([0, 1, 2], dtype=np.int64),
           square, vector, vector, np.empty((3, 2)), np.empty((3, 2)), np.zeros(3))
 
 
 def load():
-    """(pack_emissions, decode_packed, viterbi_packed, exact_forward_backward), compiled; call once
-    before using them.
+    """(row_peaks, decode_flat, viterbi_flat, exact_forward_backward), compiled; call once before
+    using them.
 
     A cache that cannot be read or written (corrupt files, a folder that became read-only, a full
     disk) must not stop tagging: the kernels are then compiled again without the cache, silently.
     """
-    global pack_emissions, decode_packed, viterbi_packed, exact_forward_backward
+    global row_peaks, decode_flat, viterbi_flat, exact_forward_backward
     with _LOAD_LOCK, warnings.catch_warnings():
         warnings.simplefilter("ignore", numba.NumbaWarning)
         try:
-            _warm_up(pack_emissions, decode_packed, viterbi_packed, exact_forward_backward)
+            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward)
         except Exception:  # noqa: BLE001 - any cache fault; a real compile error recurs below and is raised
-            pack_emissions = _jit(pack_emissions.py_func)
-            decode_packed = _jit(decode_packed.py_func)
-            viterbi_packed = _jit(viterbi_packed.py_func)
+            row_peaks = _jit(row_peaks.py_func)
+            decode_flat = _jit(decode_flat.py_func)
+            viterbi_flat = _jit(viterbi_flat.py_func)
             exact_forward_backward = _jit(exact_forward_backward.py_func)
-            _warm_up(pack_emissions, decode_packed, viterbi_packed, exact_forward_backward)
-        return pack_emissions, decode_packed, viterbi_packed, exact_forward_backward
+            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward)
+        return row_peaks, decode_flat, viterbi_flat, exact_forward_backward

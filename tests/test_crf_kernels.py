@@ -92,14 +92,13 @@ def offsets_of(lengths):
 
 def suspect_sequences(E, lengths, trans, start, end):
     """The kernel's own verdict: which sequences leave the scaled range (and are redone exactly)."""
-    E, pk = crf._check_inputs(E, lengths, trans)
-    pack_emissions, decode_packed, _, _ = crf._compiled_kernels(E)
-    trans, start, end = crf._kernel_weights(E, trans, start, end)
-    Ep, peak = pack_emissions(E, pk.flat_of_packed)
+    E = np.ascontiguousarray(E, dtype=np.float64)
+    row_peaks, decode_flat, _, _ = crf._compiled_kernels(E)
+    peak = row_peaks(E)
     with np.errstate(invalid="ignore"):
-        emission_exp = np.exp(Ep - peak)
-    return decode_packed(Ep, emission_exp, peak, pk.batch_sizes, pk.step_start, pk.last_packed, pk.flat_of_packed,
-                         pk.seq_of_token[pk.flat_of_packed], pk.lengths.size, trans, start, end)[-1]
+        emission_exp = np.exp(E - peak[:, None])
+    return decode_flat(E, emission_exp, peak, np.asarray(lengths, dtype=np.int64),
+                       *crf._kernel_weights(E, trans, start, end))[-1]
 
 
 def assert_same_as_numpy(E, lengths, trans, start, end):
@@ -237,8 +236,8 @@ def test_decode_equals_numpy_path(batch):
 @pytest.mark.parametrize("labels", LABEL_SETS)
 def test_larger_random_batches_equal_numpy_path(labels):
     rng = np.random.default_rng(len(labels))
-    lengths = rng.integers(0, 40, size=700)  # several tiles of columns per time step
-    lengths[:5] = [0, 1, 120, 0, 2]
+    lengths = rng.integers(0, 40, size=700)  # several chunks of sequences, several tiles per step
+    lengths[:5] = [0, 1, 1100, 0, 2]  # one sequence longer than a chunk's token budget
     E, trans, start, end = random_model(rng, labels, int(lengths.sum()), scale=3.0)
     assert_same_as_numpy(E, lengths, trans, start, end)
 
@@ -390,19 +389,20 @@ def test_load_recovers_from_a_failing_cache(monkeypatch):
         return original(*kernels)
 
     original = crf_kernels._warm_up
-    saved = (crf_kernels.pack_emissions, crf_kernels.decode_packed, crf_kernels.viterbi_packed,
+    saved = (crf_kernels.row_peaks, crf_kernels.decode_flat, crf_kernels.viterbi_flat,
              crf_kernels.exact_forward_backward)
     monkeypatch.setattr(crf_kernels, "_warm_up", broken_then_working)
     try:
         kernels = crf_kernels.load()
         assert len(calls) == 2
         assert all(new is not old for new, old in zip(kernels, saved))  # rebuilt without the cache
-        pack_emissions, decode_packed, _, _ = kernels
-        Ep, peak = pack_emissions(np.array([[1.0, 3.0], [2.0, 0.0]]), np.array([0, 1]))
-        np.testing.assert_array_equal(Ep, [[1.0, 2.0], [3.0, 0.0]])
-        np.testing.assert_array_equal(peak, [3.0, 2.0])
+        _, _, viterbi_flat, _ = kernels
+        labels, scores = viterbi_flat(np.array([[1.0, 3.0], [2.0, 0.0]]), np.array([1, 1]), np.zeros((2, 2)),
+                                      np.zeros(2), np.zeros(2))
+        np.testing.assert_array_equal(labels, [1, 0])  # each token alone: its best emission
+        np.testing.assert_array_equal(scores, [3.0, 2.0])
     finally:
-        (crf_kernels.pack_emissions, crf_kernels.decode_packed, crf_kernels.viterbi_packed,
+        (crf_kernels.row_peaks, crf_kernels.decode_flat, crf_kernels.viterbi_flat,
          crf_kernels.exact_forward_backward) = saved
 
 
@@ -450,7 +450,7 @@ def test_corrupt_cache_files_are_ignored(tmp_path):
     def corrupt(folder):
         folder.mkdir()
         source = Path(crf_kernels.__file__).read_text()
-        for name in ("pack_emissions", "decode_packed", "viterbi_packed", "exact_forward_backward"):
+        for name in ("row_peaks", "decode_flat", "viterbi_flat", "exact_forward_backward"):
             line = source.splitlines().index(f"def {name}(" + source.split(f"def {name}(")[1].splitlines()[0]) + 1
             index = folder / f"crf_kernels.{name}-{line}.py{sys.version_info.major}{sys.version_info.minor}.nbi"
             index.write_bytes(b"\x80\x04garbage" * 10)
