@@ -862,93 +862,134 @@ def _block_sums(weights: np.ndarray, n_slots: int, pair_lists: list[Pairs]) -> n
     return np.asarray(selector @ weights).reshape(len(pair_lists), n_slots, weights.shape[1])
 
 
+class _BlockCache:
+    """key -> (K, L) block of summed weights, computed on first use from the key's (slot, id) pairs.
+
+    Bounded: it starts afresh when full (keys repeat, so it refills with what is in use)."""
+
+    def __init__(self, weights: np.ndarray, n_slots: int, pairs_of: Callable[[object], Pairs], limit: int):
+        self.weights, self.n_slots, self.pairs_of, self.limit = weights, n_slots, pairs_of, max(1, limit)
+        self.reset()
+
+    def reset(self) -> None:
+        self.row_of: dict = {}
+        self.blocks = np.zeros((64, self.n_slots, self.weights.shape[1]))
+
+    def gather(self, keys: list) -> np.ndarray:
+        """(M, K, L) blocks of ``keys`` (a new array)."""
+        rows = np.fromiter(map(self.row_of.get, keys, repeat(-1)), dtype=np.int64, count=len(keys))
+        missing = np.flatnonzero(rows < 0).tolist()
+        if missing:
+            if len(self.row_of) + len(missing) > self.limit:
+                self.reset()
+                missing = list(range(len(keys)))
+            new_keys = list(dict.fromkeys([keys[n] for n in missing]))
+            first = len(self.row_of)
+            needed = first + len(new_keys)
+            if needed > self.blocks.shape[0]:
+                grown = np.zeros((2 * needed,) + self.blocks.shape[1:])
+                grown[:first] = self.blocks[:first]
+                self.blocks = grown
+            self.blocks[first:needed] = _block_sums(self.weights, self.n_slots, list(map(self.pairs_of, new_keys)))
+            self.row_of.update(zip(new_keys, range(first, needed)))
+            rows[missing] = list(map(self.row_of.__getitem__, [keys[n] for n in missing]))
+        return self.blocks[rows]
+
+
 class _TypeScorer:
     """(K, L) score blocks of many new (text, kind) types at once: per slot, the sum of W's rows over
     the type's known feature ids, exactly the ids `_VocabularyEncoder.append_pairs` gives.
 
     New types arrive a few per log line (timestamps, ids, addresses), so this is a hot path of
-    decoding. Every feature value the vocabulary knows ("lower=failed", "p3=err", "list=...")
-    gets its summed block once, up front (at most one per vocabulary entry). A batch's new types
-    then need only C-level ``map`` lookups of their values (lower form, each prefix and suffix) and
-    a numpy gather-add per value: no Python loop per type. Shape-and-kind blocks are filled on first
-    use: log tokens share a handful of shapes. Values the vocabulary lacks hit the zero block.
+    decoding, and it is laid out to cost a handful of C-level lookups per type (``map`` over all of a
+    batch's new types) plus a numpy gather-add per part. A type's features come in four parts:
+    - its lower form and the word lists holding it: blocks made up front for every lower form that
+      has any (every known lower value, every listed word); any other form has none;
+    - its first and last characters (prefix, suffix features): blocks cached by those characters;
+    - its shape with its kind, and for ASCII texts the case flags too (str.isupper, islower and
+      istitle of an ASCII text follow from its shape: X upper, x lower, the rest uncased): blocks
+      cached by (shape, kind). Non-ASCII texts test the case flags one by one (they are rare).
     """
 
     def __init__(self, encoder: _VocabularyEncoder, weights: np.ndarray, n_slots: int, limit: int):
-        self.encoder, self.weights, self.n_slots, self.limit = encoder, weights, n_slots, limit
-        spec, index = encoder.spec, encoder.index
-        names = list(index)
-        self.value_blocks = np.concatenate([np.zeros((1, n_slots, weights.shape[1])),
-                                            _block_sums(weights, n_slots, [index[name] for name in names])])
-        row_of = dict(zip(names, range(1, len(names) + 1)))
+        spec, index, use = encoder.spec, encoder.index, encoder.use
+        self.cut = spec.max_value_chars
+        self.use_lower = use["lower"]
 
-        def rows_by_value(label: str) -> dict[str, int]:
-            return {name[len(label):]: row for name, row in row_of.items() if name.startswith(label)}
+        def known(names) -> Pairs:
+            return tuple(chain.from_iterable(filter(None, map(index.get, names))))
 
-        # (value slice of the lower form, its value -> block row), one per lower/prefix/suffix feature
-        self.lookups: list[tuple[slice, dict[str, int]]] = []
-        if encoder.use["lower"]:
-            self.lookups.append((slice(spec.max_value_chars), rows_by_value("lower=")))
-        # A value shorter than its length ("p3=ab") is never in the vocabulary (such features are made
-        # only from long enough tokens), so a short token's slice simply finds nothing.
-        self.lookups += [(slice(n), rows_by_value(label)) for n, label in zip(spec.prefix_lengths,
-                                                                              encoder.prefix_labels)]
-        self.lookups += [(slice(-n, None), rows_by_value(label)) for n, label in zip(spec.suffix_lengths,
-                                                                                     encoder.suffix_labels)]
-        self.lookups = [(cut, rows) for cut, rows in self.lookups if rows]
-        wordlists = spec.wordlists if encoder.use["wordlists"] else ()
-        tests = [(words.__contains__, True, "list=" + name) for name, words in wordlists]
-        tests += [(holds, False, "flag=" + name) for name, holds in encoder.text_flags]
-        self.tests = [(test, on_lower, row_of[name]) for test, on_lower, name in tests if name in row_of]
-        self.value_flat = self.value_blocks.reshape(self.value_blocks.shape[0], -1)   # (values, K*L)
-        self._reset_shapes()
+        def block_table(keys: list, pairs_of) -> tuple[dict, np.ndarray]:
+            """Blocks of the keys that have any known pair: (key -> row, blocks with row 0 zero)."""
+            pair_lists = list(map(pairs_of, keys))
+            keys = [key for key, pairs in zip(keys, pair_lists) if pairs]
+            blocks = _block_sums(weights, n_slots, [pairs for pairs in pair_lists if pairs])
+            return dict(zip(keys, range(1, len(keys) + 1))), np.concatenate([np.zeros((1,) + blocks.shape[1:]), blocks])
 
-    def _reset_shapes(self) -> None:
-        self.shape_row: dict[tuple[str, str], int] = {}
-        self.shape_blocks = np.zeros((64, self.n_slots, self.weights.shape[1]))
+        wordlists = spec.wordlists if use["wordlists"] else ()
+        lower_label = "lower=" if self.use_lower else None
 
-    def _shape_rows(self, keys: list[tuple[str, str]]) -> np.ndarray:
-        rows = np.fromiter(map(self.shape_row.get, keys, repeat(-1)), dtype=np.int64, count=len(keys))
-        missing = np.flatnonzero(rows < 0)
-        if missing.size:
-            if len(self.shape_row) + missing.size > self.limit:
-                self._reset_shapes()
-                missing = np.arange(len(keys))
-            new_keys = list(dict.fromkeys(keys[n] for n in missing.tolist()))   # few: shapes repeat
-            first, needed = len(self.shape_row), len(self.shape_row) + len(new_keys)
-            if needed > self.shape_blocks.shape[0]:
-                grown = np.zeros((2 * needed,) + self.shape_blocks.shape[1:])
-                grown[:first] = self.shape_blocks[:first]
-                self.shape_blocks = grown
-            self.shape_blocks[first:needed] = _block_sums(self.weights, self.n_slots,
-                                                          [self.encoder.shape_pairs(*key) for key in new_keys])
-            self.shape_row.update(zip(new_keys, range(first, needed)))
-            rows[missing] = [self.shape_row[keys[n]] for n in missing.tolist()]
-        return rows
+        def word_pairs(lower: str) -> Pairs:
+            names = [lower_label + lower[: self.cut]] if lower_label else []
+            return known(names + ["list=" + name for name, words in wordlists if lower in words])
+
+        listed = set().union(*(words for _, words in wordlists))
+        known_lowers = {name[len("lower="):] for name in index if name.startswith("lower=")}
+        self.word_rows, self.word_blocks = block_table(sorted(known_lowers | listed), word_pairs)
+        # A lower form longer than the cut that is in no list has only its cut value's block.
+        self.cut_rows, self.cut_blocks = block_table(sorted(known_lowers), lambda value: known(["lower=" + value]))
+
+        self.longest_prefix = max(spec.prefix_lengths) if encoder.prefix_labels else 0
+        self.longest_suffix = max(spec.suffix_lengths) if encoder.suffix_labels else 0
+        prefix_items = list(zip(spec.prefix_lengths, encoder.prefix_labels))
+        suffix_items = list(zip(spec.suffix_lengths, encoder.suffix_labels))
+        self.prefix = _BlockCache(weights, n_slots, lambda head: known(
+            [label + head[:n] for n, label in prefix_items if n <= len(head)]), limit)
+        self.suffix = _BlockCache(weights, n_slots, lambda tail: known(
+            [label + tail[-n:] for n, label in suffix_items if n <= len(tail)]), limit)
+
+        text_flags = [(name, holds) for name, holds in encoder.text_flags if "flag=" + name in index]
+
+        def ascii_shape_pairs(key: tuple[str, str]) -> Pairs:
+            stand_in = key[0].replace("d", "0")    # same case classes as any ASCII text of this shape
+            return encoder.shape_pairs(*key) + known(["flag=" + name for name, holds in text_flags
+                                                      if holds(stand_in)])
+
+        self.ascii_shapes = _BlockCache(weights, n_slots, ascii_shape_pairs, limit)
+        self.other_shapes = _BlockCache(weights, n_slots, lambda key: encoder.shape_pairs(*key), limit)
+        self.flag_blocks = [(holds, _block_sums(weights, n_slots, [index["flag=" + name]])[0])
+                            for name, holds in text_flags]
 
     def scores(self, keys: list[tuple[str, str]], out: np.ndarray) -> None:
         """Write the (M, K, L) score blocks of the types ``keys`` into ``out``."""
         texts = [text for text, _ in keys]
-        lowers = list(map(str.lower, texts))
+        n_types = len(texts)
         shape_keys = list(zip(map(str.translate, texts, repeat(_SHAPE_TABLE)), [kind for _, kind in keys]))
-        shape_rows = self._shape_rows(shape_keys)   # first: it may grow shape_blocks
-        np.take(self.shape_blocks, shape_rows, axis=0, out=out)
-        # Every other value: one block row per type and value (0, the zero block, when unknown),
-        # summed by one sparse (M, values) x (values, K*L) product in a single pass over the output.
-        n_types, n_values = len(keys), len(self.lookups) + len(self.tests)
-        if n_values == 0:
-            return
-        columns = np.empty((n_types, n_values), dtype=np.int64)
-        for j, (cut, rows) in enumerate(self.lookups):
-            columns[:, j] = np.fromiter(map(rows.get, map(itemgetter(cut), lowers), repeat(0)), dtype=np.int64,
-                                        count=n_types)
-        for j, (test, on_lower, row) in enumerate(self.tests, start=len(self.lookups)):
-            columns[:, j] = np.fromiter(map(test, lowers if on_lower else texts), dtype=bool, count=n_types)
-            columns[:, j] *= row
-        selector = csr_matrix((np.ones(columns.size), columns.ravel(),
-                               np.arange(0, columns.size + 1, n_values)),
-                              shape=(n_types, self.value_blocks.shape[0]))
-        out += (selector @ self.value_flat).reshape(out.shape)
+        is_ascii = np.fromiter(map(str.isascii, texts), dtype=bool, count=n_types)
+        if is_ascii.all():
+            out[:] = self.ascii_shapes.gather(shape_keys)
+        else:
+            ascii_types, other_types = np.flatnonzero(is_ascii).tolist(), np.flatnonzero(~is_ascii).tolist()
+            if ascii_types:
+                out[ascii_types] = self.ascii_shapes.gather([shape_keys[n] for n in ascii_types])
+            out[other_types] = self.other_shapes.gather([shape_keys[n] for n in other_types])
+            for n in other_types:
+                for holds, block in self.flag_blocks:
+                    if holds(texts[n]):
+                        out[n] += block
+
+        lowers = list(map(str.lower, texts))
+        word = np.fromiter(map(self.word_rows.get, lowers, repeat(0)), dtype=np.int64, count=n_types)
+        hits = np.flatnonzero(word)
+        out[hits] += self.word_blocks[word[hits]]
+        if self.use_lower:
+            lengths = np.fromiter(map(len, lowers), dtype=np.int64, count=n_types)
+            for n in np.flatnonzero((lengths > self.cut) & (word == 0)).tolist():   # rare: long tokens
+                out[n] += self.cut_blocks[self.cut_rows.get(lowers[n][: self.cut], 0)]
+        if self.longest_prefix:
+            out += self.prefix.gather(list(map(itemgetter(slice(self.longest_prefix)), lowers)))
+        if self.longest_suffix:
+            out += self.suffix.gather(list(map(itemgetter(slice(-self.longest_suffix, None)), lowers)))
 
 
 class EmissionScorer:
@@ -1009,7 +1050,8 @@ class EmissionScorer:
         if len(kinds) != n:
             raise DataError(f"{n} tokens but {len(kinds)} kinds")
         rows = np.fromiter(map(self.row_of_text.get, texts, repeat(self._BOUNDARY)), dtype=np.int64, count=n)
-        kind_ids = np.fromiter(map(self._kind_id, kinds), dtype=np.int64, count=n)
+        # A kind not seen yet gets -2, which matches no row: such tokens take the path that registers it.
+        kind_ids = np.fromiter(map(self._kind_ids.get, kinds, repeat(-2)), dtype=np.int64, count=n)
         other = np.flatnonzero(self.kind_of_row[rows] != kind_ids)   # new, or the text's other kind
         if self.n_rows + other.size > self.cache_size:
             # The table may have to start afresh, which would orphan the rows found above: redo all.

@@ -598,3 +598,20 @@ def test_emission_scorer_empty_and_bad_input():
         scorer.type_rows(["a"], [])
     with pytest.raises(ValueError):
         EmissionScorer(extractor, np.zeros((extractor.n_features + 1, 3)))
+
+
+@SETTINGS
+@given(st.lists(st.lists(st.text(st.characters(min_codepoint=33, max_codepoint=126), min_size=1, max_size=8),
+                         min_size=1, max_size=6), min_size=1, max_size=4))
+def test_emission_scorer_case_flags_of_ascii_tokens(lines):
+    # For ASCII text the scorer reads str.isupper/islower/istitle off the word shape; Python's own
+    # predicates on the text (through the reference extractor) are the reference.
+    cfg = {"version": 1, "token": {"groups": ["flags", "shape"], "flags": ["all_upper", "all_lower", "title"]}}
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    batch = [(texts, ["word"] * len(texts)) for texts in lines]
+    extractor.fit(batch)
+    weights = np.random.default_rng(len(lines)).normal(size=(extractor.n_features, 2))
+    scorer = EmissionScorer(extractor, weights)
+    expected, lengths = _reference_emissions(extractor, batch, weights)
+    np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(batch)), lengths), expected,
+                               rtol=0, atol=1e-9)
