@@ -905,7 +905,7 @@ class _TypeScorer:
     batch's new types) plus a numpy gather-add per part. A type's features come in four parts:
     - its lower form and the word lists holding it: blocks made up front for every lower form that
       has any (every known lower value, every listed word); any other form has none;
-    - its first and last characters (prefix, suffix features): blocks cached by those characters;
+    - its prefixes and suffixes: one lookup per length in blocks made up front for every known value;
     - its shape with its kind, and for ASCII texts the case flags too (str.isupper, islower and
       istitle of an ASCII text follow from its shape: X upper, x lower, the rest uncased): blocks
       cached by (shape, kind). Non-ASCII texts test the case flags one by one (they are rare).
@@ -939,14 +939,17 @@ class _TypeScorer:
         # A lower form longer than the cut that is in no list has only its cut value's block.
         self.cut_rows, self.cut_blocks = block_table(sorted(known_lowers), lambda value: known(["lower=" + value]))
 
-        self.longest_prefix = max(spec.prefix_lengths) if encoder.prefix_labels else 0
-        self.longest_suffix = max(spec.suffix_lengths) if encoder.suffix_labels else 0
-        prefix_items = list(zip(spec.prefix_lengths, encoder.prefix_labels))
-        suffix_items = list(zip(spec.suffix_lengths, encoder.suffix_labels))
-        self.prefix = _BlockCache(weights, n_slots, lambda head: known(
-            [label + head[:n] for n, label in prefix_items if n <= len(head)]), limit)
-        self.suffix = _BlockCache(weights, n_slots, lambda tail: known(
-            [label + tail[-n:] for n, label in suffix_items if n <= len(tail)]), limit)
+        # Prefixes and suffixes: one lookup per length in a table of every known value. A value shorter
+        # than its length ("p3=ab") is never in the vocabulary (such features are only made from long
+        # enough tokens), so a short token's slice simply finds nothing.
+        affixes = [(slice(n), label) for n, label in zip(spec.prefix_lengths, encoder.prefix_labels)]
+        affixes += [(slice(-n, None), label) for n, label in zip(spec.suffix_lengths, encoder.suffix_labels)]
+        affix_names = sorted(name for name in index if any(name.startswith(label) for _, label in affixes))
+        affix_rows, self.affix_blocks = block_table(affix_names, lambda name: index[name])
+        self.affix_flat = self.affix_blocks.reshape(self.affix_blocks.shape[0], -1)   # (values, K*L)
+        self.affix_lookups = [(cut, {name[len(label):]: row for name, row in affix_rows.items()
+                                     if name.startswith(label)}) for cut, label in affixes]
+        self.affix_lookups = [(cut, rows) for cut, rows in self.affix_lookups if rows]
 
         text_flags = [(name, holds) for name, holds in encoder.text_flags if "flag=" + name in index]
 
@@ -986,10 +989,19 @@ class _TypeScorer:
             lengths = np.fromiter(map(len, lowers), dtype=np.int64, count=n_types)
             for n in np.flatnonzero((lengths > self.cut) & (word == 0)).tolist():   # rare: long tokens
                 out[n] += self.cut_blocks[self.cut_rows.get(lowers[n][: self.cut], 0)]
-        if self.longest_prefix:
-            out += self.prefix.gather(list(map(itemgetter(slice(self.longest_prefix)), lowers)))
-        if self.longest_suffix:
-            out += self.suffix.gather(list(map(itemgetter(slice(-self.longest_suffix, None)), lowers)))
+        if self.affix_lookups:
+            # One block row per type and affix (0 when unknown), summed by one sparse product over the
+            # known ones: a single pass over the output.
+            columns = np.empty((n_types, len(self.affix_lookups)), dtype=np.int64)
+            for j, (cut, rows) in enumerate(self.affix_lookups):
+                columns[:, j] = np.fromiter(map(rows.get, map(itemgetter(cut), lowers), repeat(0)),
+                                            dtype=np.int64, count=n_types)
+            known = columns > 0
+            indptr = np.zeros(n_types + 1, dtype=np.int64)
+            np.cumsum(known.sum(axis=1), out=indptr[1:])
+            selector = csr_matrix((np.ones(int(indptr[-1])), columns[known], indptr),
+                                  shape=(n_types, self.affix_flat.shape[0]))
+            out += (selector @ self.affix_flat).reshape(out.shape)
 
 
 class EmissionScorer:
