@@ -6,6 +6,7 @@ review; review records add reason, runner_up; JSON input adds the carried fields
 
 from __future__ import annotations
 
+from itertools import accumulate
 from typing import Sequence
 
 import numpy as np
@@ -120,25 +121,26 @@ def make_records(
                        "confidence": confidence}
                       for span, confidence in zip(spans, rounded(span_confidences))]
     line_confidences = rounded([result.confidence for result in tagged])
-    records, first = [], 0
-    for i, result in enumerate(tagged):
-        stop = first + len(result.spans)
-        line_flags, tagger_flags = flags[i], result.flags
-        record = {
-            "source": sources[i],
-            "offset": offsets[i],
-            "line": line_numbers[i],
+    bounds = list(accumulate([len(result.spans) for result in tagged], initial=0))
+    records = [
+        {
+            "source": source,
+            "offset": offset,
+            "line": line,
             "text": result.text,
             "spans": span_items[first:stop],
-            "confidence": line_confidences[i],
+            "confidence": confidence,
             "model": model_id,
-            "flags": sorted(set(line_flags) | set(tagger_flags)) if line_flags or tagger_flags else [],
-            "review": reviews[i],
+            "flags": sorted(set(line_flags) | set(result.flags)) if line_flags or result.flags else [],
+            "review": review,
         }
-        if fields is not None and fields[i] is not None:
-            record["fields"] = fields[i]
-        records.append(record)
-        first = stop
+        for result, source, offset, line, first, stop, confidence, line_flags, review
+        in zip(tagged, sources, offsets, line_numbers, bounds, bounds[1:], line_confidences, flags, reviews)
+    ]
+    if fields is not None:
+        for record, carried in zip(records, fields):
+            if carried is not None:
+                record["fields"] = carried
     return records
 
 
