@@ -13,18 +13,19 @@ Confidence rules (documented in the README):
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from itertools import chain
-
 import numpy as np
 
 from streamtag import crf
-from streamtag.features import FeatureExtractor, FeatureSpec
+from streamtag.features import EmissionScorer, FeatureExtractor, FeatureSpec
 from streamtag.model import Model
 from streamtag.spans import spans_from_label_ids
-from streamtag.tokenize import TokenList, tokenize
+from streamtag.tokenize import BatchTokenizer, TokenBatch
 
 DEFAULT_MAX_TOKENS = 256
 DEFAULT_WINDOW_OVERLAP = 32
+# Token types whose summed weights are kept (x window slots x labels x 8 bytes: about 38 MB at 5 slots
+# and 19 labels). A live log shows a few new types per line, so this spans tens of thousands of lines.
+SCORE_CACHE_TYPES = 50_000
 
 
 @dataclass(slots=True)
@@ -55,18 +56,20 @@ class _Batch:
     ``seq_line`` (S,) maps each sequence to its line; ``seq_first_token`` (S,) is the index, within
     its line, of the sequence's first token; ``owned_from``/``owned_to`` (S,) is the token range,
     within the line, whose labels this sequence decides (windows overlap; each token has one owner).
+    ``token_index`` (sum of lengths,) is, per sequence token, its index among the batch's line
+    tokens, or None when every line is one sequence (the common case: no copy, no masks).
     """
 
-    token_lists: list[TokenList]
     seq_line: np.ndarray
     seq_first_token: np.ndarray
     owned_from: np.ndarray
     owned_to: np.ndarray
     lengths: np.ndarray
+    token_index: np.ndarray | None
 
 
 class Tagger:
-    """Tags batches of lines with one model. Cheap to call repeatedly; caches token features."""
+    """Tags batches of lines with one model. Cheap to call repeatedly; caches per piece and per type."""
 
     def __init__(
         self,
@@ -84,6 +87,8 @@ class Tagger:
         self.trans, self.start = crf.apply_mask(model.transitions, model.start, allowed_trans, allowed_start)
         self.end = np.asarray(model.end, dtype=np.float64)
         self.emission = np.ascontiguousarray(model.emission, dtype=np.float64)
+        self.tokenizer = BatchTokenizer()
+        self.scorer = EmissionScorer(self.extractor, self.emission, cache_size=SCORE_CACHE_TYPES)
         self.entity_types = [label[2:] for label in model.labels if label.startswith("B-")]
         self.b_index = np.array([model.labels.index("B-" + t) for t in self.entity_types], dtype=np.int64)
         self.i_index = np.array([model.labels.index("I-" + t) for t in self.entity_types], dtype=np.int64)
@@ -96,29 +101,29 @@ class Tagger:
         """Tag a batch of lines. Lines whose confidence is below ``review_below`` get a runner-up."""
         if not lines:
             return []
-        batch = self._cut(lines)
-        texts_kinds = [
-            (tokens.texts[first : first + length], tokens.kinds[first : first + length])
-            for tokens, first, length in zip(
-                (batch.token_lists[i] for i in batch.seq_line), batch.seq_first_token, batch.lengths
-            )
-        ]
-        features, lengths = self.extractor.transform(texts_kinds)
-        emissions = np.asarray(features @ self.emission)
-        decoded = crf.decode(emissions, lengths, self.trans, self.start, self.end)
-        results = self._assemble(lines, batch, decoded.labels, decoded.confidence, emissions, decoded.fb)
+        tokens = self.tokenizer.tokenize_lines(lines)
+        type_rows = self.scorer.type_rows(tokens.texts, tokens.kinds)
+        batch = self._cut(tokens.counts)
+        if batch.token_index is not None:
+            type_rows = type_rows[batch.token_index]
+        emissions = self.scorer.emissions(type_rows, batch.lengths)
+        decoded = crf.decode(emissions, batch.lengths, self.trans, self.start, self.end)
+        results = self._assemble(lines, tokens, batch, decoded, emissions)
         if review_below is not None:
-            self._describe_weakest(results, batch, decoded.labels, decoded.confidence, review_below)
-            self._add_runner_up(results, batch, emissions, decoded.fb, review_below)
+            self._describe_weakest(results, tokens, batch, decoded, review_below)
+            self._add_runner_up(results, tokens, batch, emissions, decoded.fb, review_below)
         return results
 
     # -- cutting lines into sequences -------------------------------------------------------------
 
-    def _cut(self, lines: list[str]) -> _Batch:
-        token_lists = [tokenize(line) for line in lines]
+    def _cut(self, counts: np.ndarray) -> _Batch:
+        """Sequences for lines of ``counts`` (B,) tokens: the lines themselves unless one is too long."""
+        n_lines = counts.size
+        if n_lines == 0 or counts.max() <= self.max_tokens:
+            zeros = np.zeros(n_lines, dtype=np.int64)
+            return _Batch(np.arange(n_lines), zeros, zeros, counts, counts, None)
         seq_line, first, owned_from, owned_to, lengths = [], [], [], [], []
-        for line_index, tokens in enumerate(token_lists):
-            n = len(tokens.texts)
+        for line_index, n in enumerate(counts.tolist()):   # per line, only in a batch with a long line
             for start, length, own_from, own_to in self._windows(n):
                 seq_line.append(line_index)
                 first.append(start)
@@ -126,8 +131,12 @@ class Tagger:
                 owned_from.append(own_from)
                 owned_to.append(own_to)
         as_int = lambda values: np.asarray(values, dtype=np.int64)  # noqa: E731
-        return _Batch(token_lists, as_int(seq_line), as_int(first), as_int(owned_from), as_int(owned_to),
-                      as_int(lengths))
+        seq_line, first, lengths = as_int(seq_line), as_int(first), as_int(lengths)
+        line_offsets = np.cumsum(counts) - counts
+        seq_offsets = np.cumsum(lengths) - lengths
+        token_index = (np.arange(lengths.sum()) - np.repeat(seq_offsets, lengths)
+                       + np.repeat(line_offsets[seq_line] + first, lengths))
+        return _Batch(seq_line, first, as_int(owned_from), as_int(owned_to), lengths, token_index)
 
     def _windows(self, n_tokens: int) -> list[tuple[int, int, int, int]]:
         """(first token, length, owned from, owned to) per window; one window when the line fits.
@@ -148,24 +157,34 @@ class Tagger:
 
     # -- from label paths to spans ----------------------------------------------------------------
 
-    def _assemble(self, lines, batch, labels, token_conf, emissions, fb) -> list[TaggedLine]:
+    def _owned(self, batch: _Batch, values: np.ndarray) -> np.ndarray:
+        """Per sequence token values (N_seq,) -> per line token values (N,), from each token's owner."""
+        if batch.token_index is None:
+            return values
+        return values[self._owned_mask(batch)]
+
+    @staticmethod
+    def _owned_mask(batch: _Batch) -> np.ndarray:
+        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
+        seq_of_token = np.repeat(np.arange(batch.lengths.size), batch.lengths)
+        pos_in_line = np.arange(batch.lengths.sum()) - seq_offsets[seq_of_token] + batch.seq_first_token[seq_of_token]
+        return (pos_in_line >= batch.owned_from[seq_of_token]) & (pos_in_line < batch.owned_to[seq_of_token])
+
+    def _assemble(self, lines, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded, emissions) -> list[TaggedLine]:
         """Label paths of the sequences -> spans and confidences per line, vectorised over the batch.
 
         Windows of a split line overlap; each token's label comes from the window that owns it, so
         the owned tokens, in order, are exactly the lines' tokens. Chunks are read off that merged
         path (an I-X that does not continue a chunk at a window seam starts one, as in CoNLL rules).
         """
-        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
-        seq_of_token = np.repeat(np.arange(batch.lengths.size), batch.lengths)
-        pos_in_line = np.arange(labels.size) - seq_offsets[seq_of_token] + batch.seq_first_token[seq_of_token]
-        owned = (pos_in_line >= batch.owned_from[seq_of_token]) & (pos_in_line < batch.owned_to[seq_of_token])
-        line_labels, line_conf, owner = labels[owned], token_conf[owned], seq_of_token[owned]
-        line_lengths = np.array([len(t.texts) for t in batch.token_lists], dtype=np.int64)
+        line_labels = self._owned(batch, decoded.labels)
+        line_conf = self._owned(batch, decoded.confidence)
+        line_lengths = tokens.counts
         line_offsets = np.cumsum(line_lengths) - line_lengths
 
         span_line, span_first, span_stop, span_type = spans_from_label_ids(line_labels, line_lengths,
                                                                            self.model.labels)
-        span_conf = self._span_confidence(batch, fb, emissions, line_conf, line_offsets, owner,
+        span_conf = self._span_confidence(batch, decoded.fb, emissions, line_conf, line_offsets,
                                           span_line, span_first, span_stop, span_type)
         line_min = np.ones(len(lines))
         nonempty = line_lengths > 0
@@ -173,23 +192,23 @@ class Tagger:
             line_min[nonempty] = np.minimum.reduceat(line_conf, line_offsets[nonempty])
         np.minimum.at(line_min, span_line, span_conf)
 
-        starts = np.fromiter(chain.from_iterable(t.starts for t in batch.token_lists), np.int64, line_labels.size)
-        ends = np.fromiter(chain.from_iterable(t.ends for t in batch.token_lists), np.int64, line_labels.size)
-        char_start = starts[line_offsets[span_line] + span_first].tolist() if span_line.size else []
-        char_end = ends[line_offsets[span_line] + span_stop - 1].tolist() if span_line.size else []
+        span_token = line_offsets[span_line] + span_first
+        char_start = tokens.starts[span_token].tolist()
+        char_end = tokens.ends[span_token + (span_stop - span_first) - 1].tolist()
         results = [TaggedLine(text=line, spans=[], confidence=conf, n_tokens=n)
                    for line, conf, n in zip(lines, line_min.tolist(), line_lengths.tolist())]
         # One Python step per span (not per token): spans are what the output is made of.
+        entity_types = self.entity_types
         for line_index, start, end, type_index, conf in zip(span_line.tolist(), char_start, char_end,
                                                             span_type.tolist(), span_conf.tolist()):
-            text = lines[line_index]
-            results[line_index].spans.append(TaggedSpan(start, end, self.entity_types[type_index],
-                                                        text[start:end], conf))
-        for line_index in np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist():
-            results[line_index].flags.append("split")
+            results[line_index].spans.append(TaggedSpan(start, end, entity_types[type_index],
+                                                        lines[line_index][start:end], conf))
+        if batch.token_index is not None:
+            for line_index in np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist():
+                results[line_index].flags.append("split")
         return results
 
-    def _span_confidence(self, batch, fb, emissions, line_conf, line_offsets, owner,
+    def _span_confidence(self, batch, fb, emissions, line_conf, line_offsets,
                          span_line, span_first, span_stop, span_type) -> np.ndarray:
         """Exact probability of each span (constrained forward-backward) in the window owning it.
 
@@ -198,6 +217,11 @@ class Tagger:
         """
         if span_line.size == 0:
             return np.zeros(0)
+        if batch.token_index is None:   # one sequence per line: the span's sequence is its line
+            return np.exp(crf.span_log_prob(fb, emissions, batch.lengths, self.trans, self.end, span_line,
+                                            span_first, span_stop, self.b_index[span_type],
+                                            self.i_index[span_type]))
+        owner = self._owned(batch, np.repeat(np.arange(batch.lengths.size), batch.lengths))
         seq = owner[line_offsets[span_line] + span_first]
         local_first = span_first - batch.seq_first_token[seq]
         local_stop = span_stop - batch.seq_first_token[seq]
@@ -211,12 +235,16 @@ class Tagger:
             conf[s] = line_conf[first : line_offsets[span_line[s]] + span_stop[s]].min()
         return conf
 
-    def _describe_weakest(self, results, batch, labels, token_conf, review_below: float) -> None:
+    def _describe_weakest(self, results, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded,
+                          review_below: float) -> None:
         """Name what set the confidence of each line going to review: its weakest span, else token.
 
         Only lines under the threshold need a reason, so this runs on few lines; the token is found
-        again on the line's owned tokens (the windows' overlap never decides a label).
+        on the line's owned tokens (the windows' overlap never decides a label).
         """
+        line_labels = self._owned(batch, decoded.labels)
+        line_conf = self._owned(batch, decoded.confidence)
+        line_offsets = np.cumsum(tokens.counts) - tokens.counts
         for line_index, result in enumerate(results):
             if result.confidence >= review_below or result.n_tokens == 0:
                 continue
@@ -225,27 +253,14 @@ class Tagger:
                 result.weakest = (f"span {weakest_span.text!r} as {weakest_span.label} "
                                   f"at {weakest_span.confidence:.3f}")
                 continue
-            position, label = self._weakest_token(batch, labels, token_conf, line_index)
-            token = batch.token_lists[line_index].texts[position]
-            result.weakest = f"token {token!r} as {self.model.labels[label]} at {result.confidence:.3f}"
-
-    @staticmethod
-    def _weakest_token(batch, labels, token_conf, line_index: int) -> tuple[int, int]:
-        """(position in the line, label id) of the least confident token the line's windows own."""
-        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
-        best = (np.inf, 0, 0)
-        for s in np.flatnonzero(batch.seq_line == line_index).tolist():
-            first_token = int(batch.seq_first_token[s])
-            own_from, own_to = int(batch.owned_from[s]), int(batch.owned_to[s])
-            window = slice(seq_offsets[s] + own_from - first_token, seq_offsets[s] + own_to - first_token)
-            k = int(np.argmin(token_conf[window]))
-            if token_conf[window][k] < best[0]:
-                best = (token_conf[window][k], own_from + k, int(labels[window][k]))
-        return best[1], best[2]
+            first = int(line_offsets[line_index])
+            token = first + int(np.argmin(line_conf[first : first + result.n_tokens]))
+            label = self.model.labels[int(line_labels[token])]
+            result.weakest = f"token {tokens.texts[token]!r} as {label} at {result.confidence:.3f}"
 
     # -- runner-up labelling for doubtful lines -----------------------------------------------------
 
-    def _add_runner_up(self, results, batch, emissions, fb, review_below: float) -> None:
+    def _add_runner_up(self, results, tokens: TokenBatch, batch: _Batch, emissions, fb, review_below: float) -> None:
         """Second-best path for lines under the threshold (only those: n-best costs k times Viterbi).
 
         Split lines get none: the second-best path of one window is not a labelling of the line.
@@ -255,7 +270,6 @@ class Tagger:
         doubtful_seq = doubtful_line[batch.seq_line]
         if not doubtful_seq.any():
             return
-        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
         sub_lengths = batch.lengths[doubtful_seq]
         seq_of_token = np.repeat(np.arange(batch.lengths.size), batch.lengths)
         paths, scores = crf.nbest(emissions[doubtful_seq[seq_of_token]], sub_lengths, self.trans, self.start,
@@ -270,11 +284,12 @@ class Tagger:
         for k, line_index in enumerate(lines_of_sub):
             results[line_index].runner_up = []
             results[line_index].runner_up_probability = float(probability[k])
+        line_offsets = np.cumsum(tokens.counts) - tokens.counts
         keep = has_second[sp_seq]
         for k, first, stop, type_index in zip(sp_seq[keep].tolist(), sp_first[keep].tolist(),
                                               sp_stop[keep].tolist(), sp_type[keep].tolist()):
             result = results[lines_of_sub[k]]
-            tokens = batch.token_lists[lines_of_sub[k]]
-            start, end = tokens.starts[first], tokens.ends[stop - 1]
+            base = int(line_offsets[lines_of_sub[k]])
+            start, end = int(tokens.starts[base + first]), int(tokens.ends[base + stop - 1])
             result.runner_up.append(TaggedSpan(start, end, self.entity_types[type_index], result.text[start:end],
                                                None))

@@ -28,12 +28,15 @@ from __future__ import annotations
 
 import re
 from functools import lru_cache
-from itertools import islice
+from itertools import chain, compress, islice, repeat
+from operator import attrgetter
 from typing import NamedTuple
+
+import numpy as np
 
 from streamtag.errors import DataError
 
-__all__ = ["KINDS", "TokenList", "tokenize", "token_kind"]
+__all__ = ["KINDS", "BatchTokenizer", "TokenBatch", "TokenList", "tokenize", "token_kind"]
 
 
 class TokenList(NamedTuple):
@@ -351,3 +354,208 @@ def token_kind(token: str) -> str:
         if length > best_length:
             best_kind, best_length = _KIND_OF_GROUP[match.lastindex], length
     return best_kind
+
+
+# ---------------------------------------------------------------------------------------------
+# Batches of lines, with a cache of space-separated pieces
+# ---------------------------------------------------------------------------------------------
+#
+# Why cutting at ' ' is exact: no token contains white space, no part of the pattern can match a
+# ' ' character, and the pattern has no anchors (^ $ \b \A \Z). So every look-around sees a
+# neighbouring ' ' exactly as it sees the start or end of the string: both fail any attempt to read
+# a character there. Hence tokenize(line) is the concatenation, over the pieces p of
+# line.split(' '), of tokenize(p) shifted by the offset of p in the line. A test walks the parsed
+# pattern to check the premise, and others compare the two paths on generated and standard text.
+# Other white space (tab, NEL, ...) stays inside pieces and is handled by the pattern as usual.
+
+
+class TokenBatch(NamedTuple):
+    """Tokens of B lines, concatenated in line order (N tokens in all)."""
+
+    texts: list[str]  # (N) token strings
+    kinds: list[str]  # (N) one of KINDS
+    starts: np.ndarray  # (N,) int64 character offsets into the token's own line
+    ends: np.ndarray  # (N,) int64
+    counts: np.ndarray  # (B,) int64 tokens per line
+
+
+_MAX_CACHED_PIECE = 256  # longer pieces are tokenized but not cached: a log of long unique runs
+# (base64 blobs, minified JSON) must not fill memory, and such pieces rarely repeat anyway.
+_ROWS_PER_PIECE = 8  # token rows kept per cached piece on average at most (service logs: about 2)
+_ENTRY = np.dtype("<i4")  # a cache entry is two of these as bytes: first token row, number of rows
+_MISSING = np.array([0, -1], dtype=_ENTRY).tobytes()  # entry of a piece not in the cache
+_SPACE = ord(" ")
+_KIND_OBJECTS = np.array(_KIND_OF_GROUP, dtype=object)  # group number -> kind
+_get_lastindex = attrgetter("lastindex")
+_group = re.Match.group
+_span = re.Match.span
+
+
+class BatchTokenizer:
+    """Tokenize batches of lines exactly as ``tokenize`` does, tokenizing each distinct
+    space-separated piece once and reusing it while it stays in the cache.
+
+    The cache is a table of token rows (text, kind, start and end relative to the piece) and a dict
+    from piece to its first row and number of rows, packed as 8 bytes so that a whole batch's
+    look-ups join into one numpy array. A batch runs the pattern once over the pieces not seen yet
+    and gathers every token's row with numpy: no Python step per token or per cached piece.
+    """
+
+    def __init__(self, cache_size: int = 100_000):
+        if isinstance(cache_size, bool) or not isinstance(cache_size, int) or cache_size < 0:
+            raise ValueError(f"cache_size must be a non-negative int, got {cache_size!r}")
+        self.cache_size = cache_size
+        self.max_rows = _ROWS_PER_PIECE * cache_size
+        self.hits = 0  # pieces found in the cache (for benchmarks and stats)
+        self.misses = 0  # pieces tokenized
+        self._clear()
+
+    def _clear(self) -> None:
+        """Forget every piece; also gives the tables' memory back."""
+        self._entries: dict[str, bytes] = {}  # cached piece -> first row, rows (2 x int32)
+        self._n_rows = 0  # rows in use: the cached pieces', then the current batch's others
+        self._texts = np.empty(4096, dtype=object)  # (rows,) token text
+        self._kinds = np.empty(4096, dtype=object)  # (rows,) kind
+        self._starts = np.zeros(4096, dtype=_ENTRY)  # (rows,) start in the piece
+        self._ends = np.zeros(4096, dtype=_ENTRY)  # (rows,) end in the piece
+
+    def tokenize_lines(self, lines: list[str]) -> TokenBatch:
+        """Tokens of every line of ``lines``; per line the same as ``tokenize(line)``."""
+        try:
+            joined = " ".join(lines)
+        except TypeError:
+            bad = next((line for line in lines if not isinstance(line, str)), lines)
+            raise DataError(f"tokenize expects decoded str lines, got {type(bad).__name__}") from None
+        if not lines:
+            empty = np.zeros(0, dtype=np.int64)
+            return TokenBatch([], [], empty, empty.copy(), empty.copy())
+        # Joining with ' ' and splitting at ' ' gives each line's pieces in turn, line.count(' ') + 1
+        # of them (a run of k spaces leaves k - 1 empty pieces), whatever else the lines hold.
+        pieces = joined.split(" ")
+        found = b"".join(map(self._entries.get, pieces, repeat(_MISSING)))
+        entries = np.frombuffer(found, dtype=_ENTRY).reshape(len(pieces), 2)  # (P, 2)
+        missing = entries[:, 1] < 0
+        n_missing = int(np.count_nonzero(missing))
+        kept_rows = self._n_rows
+        if n_missing:
+            entries = entries.copy()
+            kept_rows = self._add_missing(pieces, entries, missing)
+        self.misses += n_missing
+        self.hits += len(pieces) - n_missing
+        batch = self._gather(lines, joined, entries)
+        if self._n_rows > kept_rows:  # let go of this batch's pieces that are not cached
+            self._texts[kept_rows : self._n_rows] = None
+            self._kinds[kept_rows : self._n_rows] = None
+            self._n_rows = kept_rows
+        return batch
+
+    def _add_missing(self, pieces: list[str], entries: np.ndarray, missing: np.ndarray) -> int:
+        """Tokenize the pieces not in the cache, add their rows and fill in their ``entries``
+        (P, 2); return the number of rows that stay in the cache after this batch."""
+        missing_pieces = list(compress(pieces, missing.tolist()))
+        distinct = list(dict.fromkeys(missing_pieces))
+        short = [piece for piece in distinct if len(piece) <= _MAX_CACHED_PIECE]
+        if len(short) < len(distinct):  # cacheable pieces first, so the others can be cut off after
+            distinct = short + [piece for piece in distinct if len(piece) > _MAX_CACHED_PIECE]
+        texts, kinds, starts, ends, n_tokens = _tokenize_pieces(distinct)
+        n_rows = len(texts)
+        n_short_rows = int(n_tokens[: len(short)].sum())
+        # Clearing the whole cache when it is full keeps memory flat at the cost of one batch of
+        # misses per refill; the pieces that matter come back at once.
+        if len(self._entries) + len(short) > self.cache_size or self._n_rows + n_short_rows > self.max_rows:
+            self._clear()
+        cache_new = len(short) <= self.cache_size and n_short_rows <= self.max_rows
+        first_row = self._n_rows
+        self._reserve(n_rows)
+        self._texts[first_row : first_row + n_rows] = texts
+        self._kinds[first_row : first_row + n_rows] = kinds
+        self._starts[first_row : first_row + n_rows] = starts
+        self._ends[first_row : first_row + n_rows] = ends
+        self._n_rows += n_rows
+        new_entries = np.empty((len(distinct), 2), dtype=_ENTRY)  # (D, 2)
+        new_entries[:, 0] = first_row + np.cumsum(n_tokens) - n_tokens
+        new_entries[:, 1] = n_tokens
+        entry_bytes = new_entries.tobytes()
+        size = 2 * _ENTRY.itemsize
+        new = dict(zip(distinct, (entry_bytes[i : i + size] for i in range(0, len(entry_bytes), size))))
+        filled = b"".join(map(new.__getitem__, missing_pieces))
+        entries[missing] = np.frombuffer(filled, dtype=_ENTRY).reshape(-1, 2)
+        if not cache_new:
+            return first_row
+        self._entries.update(islice(new.items(), len(short)))
+        return first_row + n_short_rows
+
+    def _reserve(self, more_rows: int) -> None:
+        """Grow the row tables (doubling) to hold ``more_rows`` beyond those in use."""
+        needed = self._n_rows + more_rows
+        if needed > len(self._texts):
+            size = max(needed, 2 * len(self._texts))
+            self._texts = _grown(self._texts, size)
+            self._kinds = _grown(self._kinds, size)
+            self._starts = _grown(self._starts, size)
+            self._ends = _grown(self._ends, size)
+
+    def _gather(self, lines: list[str], joined: str, entries: np.ndarray) -> TokenBatch:
+        """The batch from the pieces' entries (P, 2): their token rows, offsets shifted to the line."""
+        n_tokens = entries[:, 1]  # (P,)
+        ends = np.cumsum(n_tokens, dtype=np.int64)
+        rows = np.arange(ends[-1]) + np.repeat(entries[:, 0] - (ends - n_tokens), n_tokens)  # (N,)
+        piece_starts = _piece_starts(joined)  # (P,) in joined
+        line_lengths = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
+        line_starts = np.cumsum(line_lengths + 1) - (line_lengths + 1)  # (B,) in joined
+        first_piece = np.searchsorted(piece_starts, line_starts)  # (B,) every line has a piece
+        pieces_per_line = np.diff(first_piece, append=len(piece_starts))
+        shift = np.repeat(piece_starts - np.repeat(line_starts, pieces_per_line), n_tokens)  # (N,)
+        return TokenBatch(
+            self._texts.take(rows).tolist(),
+            self._kinds.take(rows).tolist(),
+            self._starts.take(rows) + shift,
+            self._ends.take(rows) + shift,
+            np.add.reduceat(n_tokens.astype(np.int64), first_piece),
+        )
+
+
+def _grown(array: np.ndarray, size: int) -> np.ndarray:
+    bigger = np.zeros(size, dtype=array.dtype)
+    bigger[: len(array)] = array
+    return bigger
+
+
+def _tokenize_pieces(pieces: list[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Tokens of ``pieces`` (none containing ' ') from one finditer over them joined by ' ': texts
+    (n,) and kinds (n,) as objects, starts and ends (n,) relative to their piece, tokens per piece (P,)."""
+    joined = " ".join(pieces)
+    texts, group_numbers, spans = [], [], []
+    found = _finditer(joined)
+    while True:
+        # In chunks for the reason given in tokenize: each match object holds all group marks.
+        matches = list(islice(found, _CHUNK))
+        count = len(matches)
+        texts.append(np.fromiter(map(_group, matches), dtype=object, count=count))
+        group_numbers.append(np.fromiter(map(_get_lastindex, matches), dtype=np.int64, count=count))
+        spans.append(np.fromiter(chain.from_iterable(map(_span, matches)), dtype=np.int64, count=2 * count))
+        if count < _CHUNK:
+            break
+    token_spans = np.concatenate(spans).reshape(-1, 2)  # (n, 2) in joined
+    piece_starts = _piece_starts(joined)  # (P,) in joined
+    token_piece = np.searchsorted(piece_starts, token_spans[:, 0], side="right") - 1  # (n,)
+    relative = token_spans - piece_starts[token_piece, None]
+    return (
+        np.concatenate(texts),
+        _KIND_OBJECTS[np.concatenate(group_numbers)],
+        relative[:, 0],
+        relative[:, 1],
+        np.bincount(token_piece, minlength=len(pieces)),
+    )
+
+
+def _piece_starts(joined: str) -> np.ndarray:
+    """(P,) int64 offsets of the pieces of ``joined.split(' ')`` in ``joined``."""
+    # UTF-32 gives one code unit per character; surrogatepass keeps lone surrogates (from
+    # surrogateescape decoding) countable instead of raising.
+    code_points = np.frombuffer(joined.encode("utf-32-le", "surrogatepass"), dtype=np.uint32)
+    spaces = np.flatnonzero(code_points == _SPACE)
+    starts = np.empty(len(spaces) + 1, dtype=np.int64)
+    starts[0] = 0
+    starts[1:] = spaces + 1
+    return starts
