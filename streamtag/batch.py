@@ -92,9 +92,14 @@ def encode_batch(decoded: Sequence[Decoded], tagged: Sequence[TaggedLine], model
                 reviews.append(not line.binary and result.confidence < threshold)
                 flags.append(list(read) + line.flags)
                 fields.append(line.fields)
-    output = records.make_records(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields)
-    review = []
-    if want_review:
-        review = [records.make_review_record(record, result, threshold)
-                  for record, result, doubtful in zip(output, tagged, reviews) if doubtful]
-    return records.encode(output), records.encode(review), sum(reviews)
+    output = records.encode_records(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields)
+    doubtful = [i for i, review in enumerate(reviews) if review]
+    review_bytes = b""
+    if want_review and doubtful:
+        # The output records were encoded and freed; the few doubtful ones are made again.
+        results, *columns = ([column[i] for i in doubtful] for column in (tagged, sources, offsets, line_numbers, flags))
+        chosen_fields = None if fields is None else [fields[i] for i in doubtful]
+        review_records = records.make_records(results, model_id, [True] * len(doubtful), *columns, chosen_fields)
+        review_bytes = records.encode([records.make_review_record(record, result, threshold)
+                                       for record, result in zip(review_records, results)])
+    return output, review_bytes, len(doubtful)

@@ -7,7 +7,7 @@ review; review records add reason, runner_up; JSON input adds the carried fields
 from __future__ import annotations
 
 from itertools import accumulate
-from typing import Sequence
+from typing import Iterator, Sequence
 
 import numpy as np
 import orjson
@@ -112,6 +112,27 @@ def make_records(
     dicts are made in one pass, and a line without flags gets ``[]`` without building sets.
     ``fields`` None means no line carries fields.
     """
+    return list(_record_dicts(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields))
+
+
+def encode_records(
+    tagged: Sequence[TaggedLine],
+    model_id: str,
+    reviews: Sequence[bool],
+    sources: Sequence[str | None],
+    offsets: Sequence[int | None],
+    line_numbers: Sequence[int | None],
+    flags: Sequence[Sequence[str]],
+    fields: Sequence[dict | None] | None = None,
+) -> bytes:
+    """``encode(make_records(...))``, each record encoded as soon as it is made (and then freed): the
+    batch's dicts are never all alive at once, which keeps the memory they use warm."""
+    dumps = orjson.dumps
+    return b"".join([dumps(record, option=_DUMPS_OPTIONS) for record in
+                     _record_dicts(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields)])
+
+
+def _record_dicts(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields) -> Iterator[dict]:
     spans = [span for result in tagged for span in result.spans]
     span_confidences = [span.confidence for span in spans]
     if None in span_confidences:  # not the tagger's main path (only runner-up spans lack one)
@@ -122,7 +143,7 @@ def make_records(
                       for span, confidence in zip(spans, rounded(span_confidences))]
     line_confidences = rounded([result.confidence for result in tagged])
     bounds = list(accumulate([len(result.spans) for result in tagged], initial=0))
-    records = [
+    records = (
         {
             "source": source,
             "offset": offset,
@@ -136,12 +157,16 @@ def make_records(
         }
         for result, source, offset, line, first, stop, confidence, line_flags, review
         in zip(tagged, sources, offsets, line_numbers, bounds, bounds[1:], line_confidences, flags, reviews)
-    ]
-    if fields is not None:
-        for record, carried in zip(records, fields):
-            if carried is not None:
-                record["fields"] = carried
-    return records
+    )
+    if fields is None:
+        return records
+    return map(_with_fields, records, fields)
+
+
+def _with_fields(record: dict, carried: dict | None) -> dict:
+    if carried is not None:
+        record["fields"] = carried  # last, as make_record puts it
+    return record
 
 
 def encode(records: list[dict]) -> bytes:

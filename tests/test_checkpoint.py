@@ -65,6 +65,28 @@ def test_state_file_is_private(tmp_path):
     assert stat.S_IMODE(path.stat().st_mode) == 0o640
 
 
+def test_atomic_write_creates_folders_and_leaves_no_temp(tmp_path):
+    path = tmp_path / "new" / "deeper" / "stats.json"
+    write_file_atomically(path, b'{"lines": 1}', mode=0o640)
+    write_file_atomically(str(path), b'{"lines": 2}', mode=0o640)  # str paths too
+    assert json.loads(path.read_bytes()) == {"lines": 2}  # RFC 8259 / json module reads it back
+    assert stat.S_IMODE(path.stat().st_mode) == 0o640  # the permission bits asked for, whatever the umask
+    assert sorted(p.name for p in path.parent.iterdir()) == ["stats.json"]
+
+
+def test_atomic_write_skips_a_temp_name_left_by_an_earlier_process(tmp_path):
+    # A stale temp file under the next name (same process id after a restart) is not reused:
+    # O_EXCL (POSIX open()) refuses it, the writer takes another name and the stale one stays as it was.
+    from streamtag import checkpoint
+
+    path = tmp_path / "state.json"
+    upcoming = next(checkpoint._TEMPORARY_NUMBERS) + 1
+    stale = tmp_path / f".state.json.{os.getpid()}.{upcoming}.tmp"
+    stale.write_bytes(b"half")
+    write_file_atomically(path, b"{}")
+    assert path.read_bytes() == b"{}" and stale.read_bytes() == b"half"
+
+
 def test_missing_state_is_none(tmp_path):
     assert load_state(tmp_path / "absent.json") is None
 

@@ -89,9 +89,12 @@ def reference_bytes(tagged, model_id, reviews, sources, offsets, lines, flags, f
                           st.none() | st.just({"ts": "2026-01-02", "level": 3})), max_size=8))
 def test_make_records_equals_make_record(rows):
     tagged, reviews, sources, offsets, lines, flags, fields = (list(column) for column in zip(*rows)) if rows else ([],) * 7
+    reference = reference_bytes(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields)
     fast = records.encode(records.make_records(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields))
+    fused = records.encode_records(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields)
     # RFC 8259 section 4: bytes compared, so member order counts too
-    assert fast == reference_bytes(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields)
+    assert fast == reference
+    assert fused == reference
 
 
 def test_make_records_with_spans_lacking_confidence():
