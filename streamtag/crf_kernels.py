@@ -593,3 +593,55 @@ def load():
             exact_forward_backward = _jit(exact_forward_backward.py_func)
             _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward)
         return row_peaks, decode_flat, viterbi_flat, exact_forward_backward
+
+
+@_jit_cached
+def sum_emissions(table, rows, lengths, offsets, constants, rel_base, rel_buckets, first_last, out):
+    """E (N, L) of a batch from per-type score blocks: `features.EmissionScorer.emissions`, compiled.
+
+    table (R, K, L): per type row and window slot, the summed weights the type lends there (row 0:
+    the boundary blocks); rows (N,) each token's type row; lengths (S,); offsets (K,) the slots'
+    offsets (offsets[0] = 0); constants (C, L): bias, first, last, then the relative buckets from
+    rel_base. Adds in the numpy code's order (own block + bias, first, last, bucket, then slots), so
+    the result is the same bit for bit. One pass per token, no (N, L) temporaries.
+    """
+    n_labels = table.shape[2]
+    base = 0
+    for s in range(lengths.shape[0]):
+        n = lengths[s]
+        for i in range(n):
+            t = base + i
+            row = rows[t]
+            for label in range(n_labels):
+                out[t, label] = table[row, 0, label] + constants[0, label]
+            if first_last and i == 0:
+                for label in range(n_labels):
+                    out[t, label] += constants[1, label]
+            if first_last and i == n - 1:
+                for label in range(n_labels):
+                    out[t, label] += constants[2, label]
+            if rel_buckets > 0:
+                bucket = rel_base + i * rel_buckets // n
+                for label in range(n_labels):
+                    out[t, label] += constants[bucket, label]
+            for k in range(1, offsets.shape[0]):
+                j = i + offsets[k]
+                neighbour = rows[base + j] if 0 <= j < n else 0
+                for label in range(n_labels):
+                    out[t, label] += table[neighbour, k, label]
+        base += n
+
+
+def load_emission_kernel():
+    """`sum_emissions`, compiled (from the cache if it can be read, else compiled afresh, silently)."""
+    global sum_emissions
+    args = (np.zeros((2, 2, 1)), np.array([1, 1], dtype=np.int64), np.array([2], dtype=np.int64),
+            np.array([0, 1], dtype=np.int64), np.zeros((4, 1)), 3, 1, True, np.empty((2, 1)))
+    with _LOAD_LOCK, warnings.catch_warnings():
+        warnings.simplefilter("ignore", numba.NumbaWarning)
+        try:
+            sum_emissions(*args)
+        except Exception:  # noqa: BLE001 - a cache fault; a real compile error recurs below and is raised
+            sum_emissions = _jit(sum_emissions.py_func)
+            sum_emissions(*args)
+        return sum_emissions

@@ -17,6 +17,7 @@ from hypothesis import strategies as st
 from streamtag.errors import ConfigError, DataError, StreamtagError
 from streamtag.features import (
     EmissionScorer,
+    _emission_kernel,
     FeatureExtractor,
     FeatureSpec,
     collapse_runs,
@@ -614,4 +615,20 @@ def test_emission_scorer_case_flags_of_ascii_tokens(lines):
     scorer = EmissionScorer(extractor, weights)
     expected, lengths = _reference_emissions(extractor, batch, weights)
     np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(batch)), lengths), expected,
+                               rtol=0, atol=1e-9)
+
+
+@SETTINGS
+@given(spec_dicts(), batches, st.integers(0, 2**32 - 1))
+def test_compiled_emissions_equal_the_numpy_code(cfg, batch, seed):
+    # The numba kernel adds the same blocks in the same order as the numpy code: equal bit for bit.
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    extractor.fit(batch)
+    scorer = EmissionScorer(extractor, np.random.default_rng(seed).normal(size=(extractor.n_features, 3)))
+    rows = scorer.type_rows(*_flat(batch))
+    lengths = np.array([len(texts) for texts, _ in batch], dtype=np.int64)
+    assert _emission_kernel() is not None      # numba is a dependency: the kernel must load
+    compiled = scorer.emissions(rows, lengths)
+    assert np.array_equal(compiled, scorer._emissions_numpy(rows, lengths))
+    np.testing.assert_allclose(compiled, _reference_emissions(extractor, batch, scorer.weights)[0],
                                rtol=0, atol=1e-9)
