@@ -21,7 +21,6 @@ from __future__ import annotations
 import argparse
 import errno
 import gc
-import operator
 import os
 import queue
 import signal
@@ -39,7 +38,7 @@ from streamtag.checkpoint import State, fsync_directory, load_state, recover_out
 from streamtag.config import WatchConfig, load_watch_config
 from streamtag.decode import decode_json, decode_lines
 from streamtag.errors import ConfigError, ModelError, StreamtagError
-from streamtag.follow import ChangeWatcher, Follower
+from streamtag.follow import ChangeWatcher, Follower, LineBatch
 from streamtag.model import Model, default_model_path, load_model
 from streamtag.tagger import Tagger
 
@@ -61,8 +60,6 @@ GC_YOUNG_THRESHOLD = 50_000
 MODEL_PROBE_LINE = "gatewarden[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
 
 Log = Callable[[str], None]
-# Columns of a batch of RawLines, taken in C loops (map) rather than one comprehension each.
-_DATA, _PATH, _START, _LINE_NO, _FLAGS = map(operator.attrgetter, ("data", "path", "start", "line_no", "flags"))
 
 
 def stderr_log(message: str) -> None:
@@ -216,7 +213,7 @@ class _Pending:
     """Lines read but not yet written, with the time each read happened and how many lines it gave
     (for latency: one pair per read, not one time per line)."""
 
-    lines: list = field(default_factory=list)
+    lines: LineBatch = field(default_factory=LineBatch)
     read_at: list = field(default_factory=list)
     read_counts: list = field(default_factory=list)
     started: float = 0.0
@@ -371,7 +368,7 @@ class Daemon:
         # Positions of the files found now count from here on (start_at = "end" skips are kept).
         if not self._save_checkpoint_with_retry():
             return 1
-        lines: list = []
+        lines = LineBatch()
         while True:
             if self.stop_requested:
                 return self._finish(pending)
@@ -401,10 +398,10 @@ class Daemon:
         if now - self.stats.interval_start >= self.config.stats_interval_seconds:
             self._emit_stats()
 
-    def _read_into(self, pending: _Pending) -> list:
+    def _read_into(self, pending: _Pending) -> LineBatch:
         """Read as many lines as the batch has room for; remember when they were read."""
         room = self.config.batch_max_lines - len(pending)
-        lines = self.follower.read(room) if room > 0 else []
+        lines = self.follower.read_batch(room) if room > 0 else LineBatch()
         if lines:
             read_time = self.clock()
             if not len(pending):
@@ -511,19 +508,17 @@ class Daemon:
         while not self.stop_requested and time.monotonic() < deadline:
             time.sleep(min(WAIT_SLICE_SECONDS, max(0.0, deadline - time.monotonic())))
 
-    def _encode_batch(self, raw_lines: list) -> tuple[bytes, bytes, int]:
-        """RawLines -> (output bytes, review bytes, number of review records)."""
+    def _encode_batch(self, lines: LineBatch) -> tuple[bytes, bytes, int]:
+        """Lines read -> (output bytes, review bytes, number of review records)."""
         config = self.config
-        datas = list(map(_DATA, raw_lines))
         if config.input_format == "json":
-            decoded = [decode_json(data, config.text_field) for data in datas]
+            decoded = [decode_json(data, config.text_field) for data in lines.datas]
         else:
-            decoded = decode_lines(datas)
+            decoded = decode_lines(lines.datas)
         tagged = tag_decoded(self.tagger, decoded, config.review_threshold, self.log)
         return encode_batch(
-            decoded, tagged, self.tagger.model_id, config.review_threshold,
-            sources=list(map(_PATH, raw_lines)), offsets=list(map(_START, raw_lines)),
-            line_numbers=list(map(_LINE_NO, raw_lines)), read_flags=list(map(_FLAGS, raw_lines)),
+            decoded, tagged, self.tagger.model_id, config.review_threshold, sources=lines.paths,
+            offsets=lines.starts, line_numbers=lines.line_nos, read_flags=lines.flags,
         )
 
     # -- model swap ----------------------------------------------------------------------------

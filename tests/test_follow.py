@@ -191,6 +191,35 @@ def test_line_over_the_cap_is_cut_and_flagged(tmp_path, long_length):
     assert [line.line_no for line in lines] == [1, 2, 3, 4]
 
 
+def test_read_batch_columns_hold_the_same_lines_as_read(tmp_path):
+    # read() is read_batch() turned into RawLines; here the columns themselves are checked against
+    # the bytes written, with bytes.split as the reference splitter and RFC 5234 B.1 CRLF endings.
+    first, second = tmp_path / "a.log", tmp_path / "b.log"
+    content = b"one\r\n" + b"L" * 300 + b"\nshort\n\n"
+    first.write_bytes(content)
+    second.write_bytes(b"other\npartial")
+    clock = FakeClock()
+    follower = make_follower([first, second], clock=clock, max_line_bytes=100, idle_flush_seconds=1.0)
+    follower.poll()
+    batch = follower.read_batch(100)
+    clock.advance(5)  # the partial last line of b.log is flushed after the idle time
+    follower.poll()
+    batch.extend(follower.read_batch(100))
+    by_path = {}
+    for key, path, start, end, data, line_no, flags in zip(batch.keys, batch.paths, batch.starts, batch.ends,
+                                                           batch.datas, batch.line_nos, batch.flags):
+        by_path.setdefault(path, []).append((start, end, data, line_no, flags))
+        assert key.count(":") == 2  # "DEV:INO:GEN"
+    assert by_path[str(first)] == [
+        (0, 5, b"one", 1, ()), (5, 306, b"L" * 100, 2, (FLAG_TRUNCATED,)), (306, 312, b"short", 3, ()),
+        (312, 313, b"", 4, ()),
+    ]
+    assert by_path[str(second)] == [(0, 6, b"other", 1, ()), (6, 13, b"partial", 2, (FLAG_NO_NEWLINE,))]
+    assert len(batch) == 6
+    assert batch.raw_lines() == [RawLine(*row) for row in zip(batch.keys, batch.paths, batch.starts, batch.ends,
+                                                               batch.datas, batch.line_nos, batch.flags)]
+
+
 def test_long_line_growing_without_newline_then_completed(tmp_path):
     log = tmp_path / "app.log"
     log.write_bytes(b"x" * 5000)

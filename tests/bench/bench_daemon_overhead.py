@@ -183,18 +183,20 @@ def _best(function, runs: int) -> float:
 def stage_costs(work: Path, source: Path, model_id: str, batch: int, runs: int) -> dict[str, float]:
     """Seconds for each stage over the whole file, best of ``runs``."""
     def read_all():
+        """The daemon's way of reading: columns (read_batch) where the follower has them."""
         follower = Follower([str(source)], idle_flush_seconds=None)
         follower.poll()
+        read = getattr(follower, "read_batch", follower.read)
         out = []
         while True:
-            got = follower.read(batch)
+            got = read(batch)
             if not got:
                 break
             out.append(got)
         follower.close()
         return out
 
-    batches = read_all()
+    batches = [got.raw_lines() if hasattr(got, "raw_lines") else got for got in read_all()]
     n = sum(map(len, batches))
     costs = {"read+split": _best(read_all, runs)}
     from streamtag import decode as decode_module
