@@ -92,7 +92,8 @@ def encode_batch(decoded: Sequence[Decoded], tagged: Sequence[TaggedLine], model
                 reviews.append(not line.binary and result.confidence < threshold)
                 flags.append(list(read) + line.flags)
                 fields.append(line.fields)
-    output = records.encode_records(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields)
+    output = records.encode(records.make_records(tagged, model_id, reviews, sources, offsets, line_numbers, flags,
+                                                 fields))
     doubtful = [i for i, review in enumerate(reviews) if review]
     review_bytes = b""
     if want_review and doubtful:

@@ -7,7 +7,7 @@ review; review records add reason, runner_up; JSON input adds the carried fields
 from __future__ import annotations
 
 from itertools import accumulate
-from typing import Iterator, Sequence
+from typing import Iterable, Iterator, Sequence
 
 import numpy as np
 import orjson
@@ -105,34 +105,15 @@ def make_records(
     line_numbers: Sequence[int | None],
     flags: Sequence[Sequence[str]],
     fields: Sequence[dict | None] | None = None,
-) -> list[dict]:
-    """``make_record`` for a batch: the same dicts (same keys in the same order, same values).
+) -> Iterator[dict]:
+    """``make_record`` for a batch: the same dicts (same keys in the same order, same values), one at
+    a time, so that ``encode(make_records(...))`` encodes each as soon as it is made and the batch's
+    dicts are never all alive at once (which keeps the memory they use warm).
 
     Built with fewer steps per line: the batch's confidences are rounded together (``rounded``), span
     dicts are made in one pass, and a line without flags gets ``[]`` without building sets.
     ``fields`` None means no line carries fields.
     """
-    return list(_record_dicts(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields))
-
-
-def encode_records(
-    tagged: Sequence[TaggedLine],
-    model_id: str,
-    reviews: Sequence[bool],
-    sources: Sequence[str | None],
-    offsets: Sequence[int | None],
-    line_numbers: Sequence[int | None],
-    flags: Sequence[Sequence[str]],
-    fields: Sequence[dict | None] | None = None,
-) -> bytes:
-    """``encode(make_records(...))``, each record encoded as soon as it is made (and then freed): the
-    batch's dicts are never all alive at once, which keeps the memory they use warm."""
-    dumps = orjson.dumps
-    return b"".join([dumps(record, option=_DUMPS_OPTIONS) for record in
-                     _record_dicts(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields)])
-
-
-def _record_dicts(tagged, model_id, reviews, sources, offsets, line_numbers, flags, fields) -> Iterator[dict]:
     spans = [span for result in tagged for span in result.spans]
     span_confidences = [span.confidence for span in spans]
     if None in span_confidences:  # not the tagger's main path (only runner-up spans lack one)
@@ -169,7 +150,7 @@ def _with_fields(record: dict, carried: dict | None) -> dict:
     return record
 
 
-def encode(records: list[dict]) -> bytes:
+def encode(records: Iterable[dict]) -> bytes:
     """Records as JSON Lines bytes, ready for one write."""
     dumps = orjson.dumps
     return b"".join([dumps(record, option=_DUMPS_OPTIONS) for record in records])

@@ -90,16 +90,16 @@ def reference_bytes(tagged, model_id, reviews, sources, offsets, lines, flags, f
 def test_make_records_equals_make_record(rows):
     tagged, reviews, sources, offsets, lines, flags, fields = (list(column) for column in zip(*rows)) if rows else ([],) * 7
     reference = reference_bytes(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields)
-    fast = records.encode(records.make_records(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields))
-    fused = records.encode_records(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields)
+    made = list(records.make_records(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields))
+    fused = records.encode(records.make_records(tagged, "st1-test", reviews, sources, offsets, lines, flags, fields))
     # RFC 8259 section 4: bytes compared, so member order counts too
-    assert fast == reference
+    assert records.encode(made) == reference
     assert fused == reference
 
 
 def test_make_records_with_spans_lacking_confidence():
     # runner-up style spans have no confidence: the reference omits the key (README "Output records")
     line = TaggedLine("relay-07 down", [TaggedSpan(0, 8, "host", "relay-07", None)], 0.4, 2)
-    fast = records.make_records([line], "m", [True], [None], [0], [1], [()])
+    fast = list(records.make_records([line], "m", [True], [None], [0], [1], [()]))
     assert records.encode(fast) == reference_bytes([line], "m", [True], [None], [0], [1], [()], [None])
     assert "confidence" not in fast[0]["spans"][0]

@@ -216,9 +216,9 @@ def stage_costs(work: Path, source: Path, model_id: str, batch: int, runs: int) 
         for results, raws in zip(tagged, batches):
             reviews = [result.confidence < REVIEW_BELOW for result in results]
             if hasattr(records, "make_records"):
-                made.append(records.make_records(results, model_id, reviews, [raw.path for raw in raws],
-                                                 [raw.start for raw in raws], [raw.line_no for raw in raws],
-                                                 [raw.flags for raw in raws]))
+                made.append(list(records.make_records(results, model_id, reviews, [raw.path for raw in raws],
+                                                      [raw.start for raw in raws], [raw.line_no for raw in raws],
+                                                      [raw.flags for raw in raws])))
             else:
                 made.append([records.make_record(result, model_id, review, raw.path, raw.start, raw.line_no,
                                                  raw.flags) for result, review, raw in zip(results, reviews, raws)])
