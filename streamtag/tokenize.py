@@ -463,7 +463,12 @@ class BatchTokenizer:
         # Clearing the whole cache when it is full keeps memory flat at the cost of one batch of
         # misses per refill; the pieces that matter come back at once.
         if len(self._entries) + len(short) > self.cache_size or self._n_rows + n_short_rows > self.max_rows:
-            self._clear()
+            if self._entries:
+                # Start afresh and look the whole batch up again: the entries found before the
+                # clearing point at rows of the old tables.
+                self._clear()
+                missing[:] = True
+                return self._add_missing(pieces, entries, missing)
         cache_new = len(short) <= self.cache_size and n_short_rows <= self.max_rows
         first_row = self._n_rows
         self._reserve(n_rows)

@@ -81,7 +81,7 @@ def test_long_pieces_are_tokenized_but_not_kept():
     lines = [f"x {long_piece} y", long_piece, "x y"]
     for _ in range(3):
         assert_same(tokenizer.tokenize_lines(lines), lines)
-    assert long_piece not in tokenizer._piece_ids and "x" in tokenizer._piece_ids
+    assert long_piece not in tokenizer._entries and "x" in tokenizer._entries
 
 
 def test_a_huge_line_of_one_character_tokens():
@@ -96,7 +96,7 @@ def test_cache_stays_bounded():
     for start in range(0, 2000, 100):
         lines = [f"id={n} took {n * 7}ms" for n in range(start, start + 100)]
         assert_same(tokenizer.tokenize_lines(lines), lines)
-        assert len(tokenizer._piece_ids) <= 50
+        assert len(tokenizer._entries) <= 50
 
 
 def test_non_str_lines_are_a_data_error():
