@@ -873,7 +873,8 @@ class _BlockCache:
 
     def reset(self) -> None:
         self.row_of: dict = {}
-        self.blocks = np.zeros((64, self.n_slots, self.weights.shape[1]))
+        if not hasattr(self, "blocks"):   # kept across resets, like the scorer's table
+            self.blocks = np.zeros((64, self.n_slots, self.weights.shape[1]))
 
     def gather(self, keys: list) -> np.ndarray:
         """(M, K, L) blocks of ``keys`` (a new array)."""
@@ -1071,11 +1072,16 @@ class EmissionScorer:
         # batch; the second builds a tuple per token, so it serves only the tokens the first misses.
         self.row_of_text: dict[str, int] = {}
         self.row_of_type: dict[tuple[str, str], int] = {}
+        self.n_rows = 1
+        if hasattr(self, "table") and self.table.shape[0] >= capacity:
+            # Keep the table: it refills to the same size, and freeing and regrowing it would make
+            # resident memory rise and fall with every refill instead of staying flat.
+            self.kind_of_row[1:] = -1
+            return
         self.table = np.zeros((capacity, self.n_slots, self.n_labels))     # (capacity, K, L)
         self.kind_of_row = np.full(capacity, -1, dtype=np.int64)          # (capacity,) kind id
         boundary = self.constant_rows[self.rows.boundary_base:]
         self.table[self._BOUNDARY, 1:] = boundary                           # slot k -> offsets[k]
-        self.n_rows = 1
 
     def type_rows(self, texts: list[str], kinds: list[str]) -> np.ndarray:
         """(N,) int64 table row of each token's type, scoring the types not seen before."""

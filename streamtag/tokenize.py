@@ -411,13 +411,19 @@ class BatchTokenizer:
         self._clear()
 
     def _clear(self) -> None:
-        """Forget every piece; also gives the tables' memory back."""
+        """Forget every piece. The row tables are kept (only their references to strings are
+        dropped): they refill to the same size, and freeing and regrowing them would make the
+        daemon's resident memory rise and fall with every refill instead of staying flat."""
         self._entries: dict[str, bytes] = {}  # cached piece -> first row, rows (2 x int32)
+        if hasattr(self, "_texts"):
+            self._texts[: self._n_rows] = None
+            self._kinds[: self._n_rows] = None
+        else:
+            self._texts = np.empty(4096, dtype=object)  # (rows,) token text
+            self._kinds = np.empty(4096, dtype=object)  # (rows,) kind
+            self._starts = np.zeros(4096, dtype=_ENTRY)  # (rows,) start in the piece
+            self._ends = np.zeros(4096, dtype=_ENTRY)  # (rows,) end in the piece
         self._n_rows = 0  # rows in use: the cached pieces', then the current batch's others
-        self._texts = np.empty(4096, dtype=object)  # (rows,) token text
-        self._kinds = np.empty(4096, dtype=object)  # (rows,) kind
-        self._starts = np.zeros(4096, dtype=_ENTRY)  # (rows,) start in the piece
-        self._ends = np.zeros(4096, dtype=_ENTRY)  # (rows,) end in the piece
 
     def tokenize_lines(self, lines: list[str]) -> TokenBatch:
         """Tokens of every line of ``lines``; per line the same as ``tokenize(line)``."""
