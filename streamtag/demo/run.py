@@ -51,6 +51,7 @@ REFRESH_SECONDS = 0.5          # live summary redraws
 PROGRESS_SECONDS = 3.0         # plain progress lines when stdout is not a terminal
 KEEP_WRITING_OLD_SECONDS = 1.0  # writing through the renamed file before reopening
 CATCH_UP_SECONDS = 20.0        # longest wait for the daemon to tag the last fed lines
+READY_SECONDS = 180.0          # longest wait for the daemon to start (a first run compiles kernels)
 STOP_SECONDS = 30.0            # longest wait for the daemon to exit after SIGTERM
 LAST_LINES = 5
 LEAD_COLUMNS = 12              # text kept before the first span when a shown line must be cut
@@ -466,6 +467,7 @@ class _DemoRun:
                        f"(Ctrl-C stops early)\nfolder {self.paths.root}\n")
         self.out.flush()
         try:
+            self._wait_until_ready(daemon)
             elapsed = self._feed(daemon)
             self._catch_up(daemon, elapsed)
         finally:
@@ -475,6 +477,23 @@ class _DemoRun:
         self.tally.add(self.tail.read())
         self.tally.read_stats(self.paths.stats)
         return Outcome(self.fed_texts, self.tally, exit_code, self.stop.set, elapsed)
+
+    def _wait_until_ready(self, daemon: subprocess.Popen) -> None:
+        """Feed only once the daemon says it is watching: on a machine's first run it compiles its
+        kernels (up to a minute), and lines fed meanwhile would all pile up for the catch-up."""
+        deadline = time.monotonic() + READY_SECONDS
+        told = False
+        while time.monotonic() < deadline and daemon.poll() is None and not self.stop.set:
+            try:
+                if b"watching " in Path(self.paths.daemon_log).read_bytes():
+                    return
+            except OSError:
+                pass
+            if not told and time.monotonic() > deadline - READY_SECONDS + 2:
+                self.out.write("starting the daemon (a first run compiles its kernels, up to a minute) ...\n")
+                self.out.flush()
+                told = True
+            time.sleep(0.1)
 
     def _rate_text(self) -> str:
         return f"{sum(self.schedule) / max(self.seconds, 1e-9):.0f} lines/s"
