@@ -385,10 +385,9 @@ _ROWS_PER_PIECE = 8  # token rows kept per cached piece on average at most (serv
 _ENTRY = np.dtype("<i4")  # a cache entry is two of these as bytes: first token row, number of rows
 _MISSING = np.array([0, -1], dtype=_ENTRY).tobytes()  # entry of a piece not in the cache
 _SPACE = ord(" ")
-_KIND_OBJECTS = np.array(_KIND_OF_GROUP, dtype=object)  # group number -> kind
 _get_lastindex = attrgetter("lastindex")
 _group = re.Match.group
-_span = re.Match.span
+_start = re.Match.start
 
 
 class BatchTokenizer:
@@ -425,13 +424,17 @@ class BatchTokenizer:
             self._ends = np.zeros(4096, dtype=_ENTRY)  # (rows,) end in the piece
         self._n_rows = 0  # rows in use: the cached pieces', then the current batch's others
 
+    @property
+    def cached_pieces(self) -> int:
+        """Distinct pieces held in the cache (at most ``cache_size``)."""
+        return len(self._entries)
+
     def tokenize_lines(self, lines: list[str]) -> TokenBatch:
         """Tokens of every line of ``lines``; per line the same as ``tokenize(line)``."""
         try:
             joined = " ".join(lines)
         except TypeError:
-            bad = next((line for line in lines if not isinstance(line, str)), lines)
-            raise DataError(f"tokenize expects decoded str lines, got {type(bad).__name__}") from None
+            raise DataError(f"tokenize expects a list of decoded str lines, got {_first_non_str(lines)}") from None
         if not lines:
             empty = np.zeros(0, dtype=np.int64)
             return TokenBatch([], [], empty, empty.copy(), empty.copy())
@@ -486,9 +489,8 @@ class BatchTokenizer:
         new_entries = np.empty((len(distinct), 2), dtype=_ENTRY)  # (D, 2)
         new_entries[:, 0] = first_row + np.cumsum(n_tokens) - n_tokens
         new_entries[:, 1] = n_tokens
-        entry_bytes = new_entries.tobytes()
-        size = 2 * _ENTRY.itemsize
-        new = dict(zip(distinct, (entry_bytes[i : i + size] for i in range(0, len(entry_bytes), size))))
+        # Viewed as 8-byte void items, tolist gives one bytes object per entry (nothing stripped).
+        new = dict(zip(distinct, new_entries.view(f"V{2 * _ENTRY.itemsize}").ravel().tolist()))
         filled = b"".join(map(new.__getitem__, missing_pieces))
         entries[missing] = np.frombuffer(filled, dtype=_ENTRY).reshape(-1, 2)
         if not cache_new:
@@ -526,38 +528,44 @@ class BatchTokenizer:
         )
 
 
+def _first_non_str(lines) -> str:
+    """Type name of the first item of ``lines`` that is not a str, or of ``lines`` itself."""
+    try:
+        return next(type(line).__name__ for line in lines if not isinstance(line, str))
+    except (TypeError, StopIteration):
+        return type(lines).__name__
+
+
 def _grown(array: np.ndarray, size: int) -> np.ndarray:
     bigger = np.zeros(size, dtype=array.dtype)
     bigger[: len(array)] = array
     return bigger
 
 
-def _tokenize_pieces(pieces: list[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def _tokenize_pieces(pieces: list[str]) -> tuple[list[str], list[str], np.ndarray, np.ndarray, np.ndarray]:
     """Tokens of ``pieces`` (none containing ' ') from one finditer over them joined by ' ': texts
-    (n,) and kinds (n,) as objects, starts and ends (n,) relative to their piece, tokens per piece (P,)."""
+    (n) and kinds (n), starts and ends (n,) relative to their piece, tokens per piece (P,)."""
     joined = " ".join(pieces)
-    texts, group_numbers, spans = [], [], []
+    texts: list[str] = []
+    kinds: list[str] = []
+    starts = []
     found = _finditer(joined)
     while True:
         # In chunks for the reason given in tokenize: each match object holds all group marks.
+        # One C-level map per field: every Python call on a match costs about as much as the
+        # bookkeeping of a cached token, so a match gives its text, start and kind and no more.
         matches = list(islice(found, _CHUNK))
-        count = len(matches)
-        texts.append(np.fromiter(map(_group, matches), dtype=object, count=count))
-        group_numbers.append(np.fromiter(map(_get_lastindex, matches), dtype=np.int64, count=count))
-        spans.append(np.fromiter(chain.from_iterable(map(_span, matches)), dtype=np.int64, count=2 * count))
-        if count < _CHUNK:
+        texts += map(_group, matches)
+        kinds += map(_KIND_OF_GROUP.__getitem__, map(_get_lastindex, matches))
+        starts.append(np.fromiter(map(_start, matches), dtype=np.int64, count=len(matches)))
+        if len(matches) < _CHUNK:
             break
-    token_spans = np.concatenate(spans).reshape(-1, 2)  # (n, 2) in joined
+    token_starts = np.concatenate(starts)  # (n,) in joined
+    token_ends = token_starts + np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
     piece_starts = _piece_starts(joined)  # (P,) in joined
-    token_piece = np.searchsorted(piece_starts, token_spans[:, 0], side="right") - 1  # (n,)
-    relative = token_spans - piece_starts[token_piece, None]
-    return (
-        np.concatenate(texts),
-        _KIND_OBJECTS[np.concatenate(group_numbers)],
-        relative[:, 0],
-        relative[:, 1],
-        np.bincount(token_piece, minlength=len(pieces)),
-    )
+    token_piece = np.searchsorted(piece_starts, token_starts, side="right") - 1  # (n,)
+    shift = piece_starts[token_piece]
+    return texts, kinds, token_starts - shift, token_ends - shift, np.bincount(token_piece, minlength=len(pieces))
 
 
 def _piece_starts(joined: str) -> np.ndarray:

@@ -1,106 +1,329 @@
-"""BatchTokenizer: the same tokens as `tokenize`, line by line, whatever the cache holds.
+"""Tests for streamtag.tokenize.BatchTokenizer: for every line, exactly the tokens of ``tokenize``.
 
-The reference is `tokenize` itself, which tests/test_tokenize.py checks against the RFC examples and
-Python's parsers (ipaddress, uuid, urllib, email, datetime). Every corpus of that file is run
-through the batch path here, and hypothesis builds lines from the characters that sit at token
-boundaries (spaces, tabs, '.', ':', '-', '/', '@', '\\', '%', quotes, brackets, digits, hex letters,
-non-ASCII letters, combining marks, controls).
+The reference is ``tokenize`` itself, whose own tests judge it against RFCs and reference libraries;
+here its corpora (RFC examples, sample log, adversarial motifs) and generated text go through the
+batch path and must come out the same. The premise of the piece cache (the pattern cannot tell a
+neighbouring ' ' from the start or end of the string) is checked on the parsed pattern.
 """
 
 from __future__ import annotations
 
+import ast
+import re
+import re._compiler
+import re._constants as sre
+import re._parser
+import tracemalloc
+from pathlib import Path
+
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import test_tokenize as corpora
+import test_tokenize as reference_corpora
 from streamtag.errors import DataError
-from streamtag.tokenize import BatchTokenizer, tokenize
+from streamtag.tokenize import _TOKEN_RE, KINDS, BatchTokenizer, TokenBatch, tokenize
 
-BOUNDARY_CHARS = " \t.:-/@\\%'\"[](){}<>=,;!?#_+~*0123456789abcdefABCDEFxyzXYZ" + "é\u0301ßİ٣²\u00a0\u0085\x00\x1b\ufeff"
-SETTINGS = settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-
-
-def per_line(lines):
-    """The batch as `tokenize` gives it, one line at a time (the reference)."""
-    texts, kinds, starts, ends, counts = [], [], [], [], []
-    for line in lines:
-        tokens = tokenize(line)
-        texts += tokens.texts
-        kinds += tokens.kinds
-        starts += tokens.starts
-        ends += tokens.ends
-        counts.append(len(tokens.texts))
-    return texts, kinds, starts, ends, counts
+SAMPLE = Path(__file__).parent / "data" / "tokenize_sample.log"
 
 
-def assert_same(batch, lines):
-    texts, kinds, starts, ends, counts = per_line(lines)
-    assert batch.texts == texts
-    assert batch.kinds == kinds
-    assert batch.starts.tolist() == starts and batch.ends.tolist() == ends
-    assert batch.counts.tolist() == counts
-    assert batch.starts.dtype == np.int64 and batch.counts.dtype == np.int64
+def assert_same_as_tokenize(lines: list[str], batch: TokenBatch) -> None:
+    """The batch holds, line after line, exactly what tokenize gives for that line."""
+    assert len(batch.texts) == len(batch.kinds) == len(batch.starts) == len(batch.ends)
+    assert batch.starts.dtype == batch.ends.dtype == batch.counts.dtype == np.int64
+    assert batch.counts.shape == (len(lines),)
+    assert int(batch.counts.sum()) == len(batch.texts)
+    position = 0
+    for line, count in zip(lines, batch.counts.tolist()):
+        expected = tokenize(line)
+        stop = position + count
+        got = (batch.texts[position:stop], batch.starts[position:stop].tolist(),
+               batch.ends[position:stop].tolist(), batch.kinds[position:stop])
+        assert got == (expected.texts, expected.starts, expected.ends, expected.kinds), line
+        position = stop
 
 
-line_text = st.text(st.sampled_from(BOUNDARY_CHARS), max_size=40)
+def tokenize_twice(lines: list[str], cache_size: int = 100_000) -> None:
+    """First call: every piece new; second call on the same tokenizer: every short piece cached."""
+    tokenizer = BatchTokenizer(cache_size)
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
 
 
-@SETTINGS
-@given(st.lists(st.lists(line_text, max_size=6), min_size=1, max_size=4), st.integers(0, 8))
-def test_batches_equal_tokenize_line_by_line(batches, cache_size):
-    tokenizer = BatchTokenizer(cache_size=cache_size)   # tiny caches: clearing mid-stream is exercised
-    for lines in batches + batches:                     # the second round meets what the cache kept
-        assert_same(tokenizer.tokenize_lines(lines), lines)
+# ------------------------------------------------------------------------------------------------
+# the premise: a ' ' next to a piece reads like the edge of the string
+# ------------------------------------------------------------------------------------------------
+
+_STRUCTURE = {sre.BRANCH, sre.SUBPATTERN, sre.ASSERT, sre.ASSERT_NOT, sre.MAX_REPEAT, sre.MIN_REPEAT,
+              sre.POSSESSIVE_REPEAT, sre.ATOMIC_GROUP}
+_CONSUMING = {sre.IN, sre.LITERAL, sre.NOT_LITERAL, sre.ANY}
 
 
-@pytest.mark.parametrize("name", ["RFC4291_FORMS", "RFC5424_EXAMPLES", "RFC3986_WITH_AUTHORITY",
-                                  "RFC3986_WITHOUT_AUTHORITY", "LOG_FRAGMENTS", "FAST_PATH_EDGES"])
-def test_standard_examples_through_the_batch_path(name):
-    # The corpora of test_tokenize.py (RFC 4291 section 2.2, RFC 5424 section 6.5, RFC 3986 examples,
-    # log fragments, fast-path edges), as lines and as one line joined by spaces.
-    items = [item if isinstance(item, str) else item[0] for item in getattr(corpora, name)]
-    lines = items + [" ".join(items), "  ".join(items) + " ", "\t".join(items)]
-    tokenizer = BatchTokenizer(cache_size=3)
-    assert_same(tokenizer.tokenize_lines(lines), lines)
-    assert_same(tokenizer.tokenize_lines(lines[::-1]), lines[::-1])
+def _nodes(subpattern):
+    """Every node of a parsed pattern, depth first."""
+    for op, av in subpattern:
+        yield op, av
+        if op == sre.BRANCH:
+            children = av[1]
+        elif op == sre.SUBPATTERN:
+            children = [av[-1]]
+        elif op in (sre.ASSERT, sre.ASSERT_NOT):
+            children = [av[1]]
+        elif op in (sre.MAX_REPEAT, sre.MIN_REPEAT, sre.POSSESSIVE_REPEAT):
+            children = [av[2]]
+        elif op == sre.ATOMIC_GROUP:
+            children = [av]
+        else:
+            children = []
+        for child in children:
+            yield from _nodes(child)
 
 
-def test_empty_lines_runs_of_spaces_and_an_empty_batch():
-    tokenizer = BatchTokenizer()
-    lines = ["", " ", "   a  b ", "a", "", "\t x\t", "a b"]
-    assert_same(tokenizer.tokenize_lines(lines), lines)
-    empty = tokenizer.tokenize_lines([])
-    assert empty.texts == [] and empty.counts.tolist() == []
+def test_pattern_cannot_tell_a_space_from_the_edge_of_the_string():
+    # Python's own regular-expression parser (re._parser) reads the token pattern. If no node can
+    # consume ' ' and there are no anchors (^ $ \b \A \Z) or back-references, then every
+    # look-ahead and look-behind fails the same way at a ' ' as at the end or start of the string,
+    # and no token spans a ' ': so tokenizing the pieces of line.split(' ') apart is exact.
+    parsed = re._parser.parse(_TOKEN_RE.pattern, _TOKEN_RE.flags)
+    ops = {op for op, _ in _nodes(parsed)}
+    assert ops <= _STRUCTURE | _CONSUMING, ops - _STRUCTURE - _CONSUMING
+    consuming = [(op, av) for op, av in _nodes(parsed) if op in _CONSUMING]
+    assert len(consuming) > 100  # the walk reached the whole pattern
+    for node in consuming:
+        single = re._compiler.compile(re._parser.SubPattern(parsed.state, [node]), parsed.state.flags)
+        assert single.fullmatch(" ") is None, node
+    # The check is sufficient, not exact: it flags patterns that read spaces (Python Library
+    # Reference, re: lookarounds, $, \s) and, to be safe, any anchor such as \b. Where it flags one,
+    # splitting at ' ' really can change the matches; the pattern it passes behaves the same.
+    for pattern, flagged, differs in ((r"a(?= )", True, True), (r"a$", True, True), (r"a(?!\s)", True, True),
+                                      (r"(?<=\s)a", True, True), (r"a\b", True, False), (r"a(?!\S)", False, False)):
+        assert _looks_at_spaces(pattern) == flagged, pattern
+        line = "a a"
+        by_pieces = [m for piece in line.split(" ") for m in re.findall(pattern, piece)]
+        assert (by_pieces != re.findall(pattern, line)) == differs, pattern
 
 
-def test_long_pieces_are_tokenized_but_not_kept():
-    tokenizer = BatchTokenizer(cache_size=100)
-    long_piece = "ab.cd-" * 100   # 600 characters, one piece
-    lines = [f"x {long_piece} y", long_piece, "x y"]
-    for _ in range(3):
-        assert_same(tokenizer.tokenize_lines(lines), lines)
-    assert long_piece not in tokenizer._entries and "x" in tokenizer._entries
+def _looks_at_spaces(pattern: str) -> bool:
+    parsed = re._parser.parse(pattern)
+    nodes = list(_nodes(parsed))
+    return any(op not in _STRUCTURE | _CONSUMING for op, _ in nodes) or any(
+        re._compiler.compile(re._parser.SubPattern(parsed.state, [node]), 0).fullmatch(" ")
+        for node in nodes if node[0] in _CONSUMING
+    )
 
 
-def test_a_huge_line_of_one_character_tokens():
-    # 64 KiB of one-character tokens (the daemon's byte cap): same tokens, no trouble.
-    line = "(" * 65536
-    batch = BatchTokenizer().tokenize_lines([line, "a"])
-    assert batch.counts.tolist() == [65536, 1] and batch.ends[-2] == 65536
+def test_split_keeps_one_piece_per_space():
+    # Python Library Reference, str.split with an explicit separator: consecutive separators are
+    # not grouped and delimit empty strings; so each line has line.count(' ') + 1 pieces and a
+    # batch joined with ' ' splits into the lines' pieces in turn.
+    lines = ["  a  b ", "", " ", "x\ny", "tab\there"]
+    assert " ".join(lines).split(" ") == [piece for line in lines for piece in line.split(" ")]
+    assert [len(line.split(" ")) for line in lines] == [line.count(" ") + 1 for line in lines]
+    tokenize_twice(lines)
 
 
-def test_cache_stays_bounded():
-    tokenizer = BatchTokenizer(cache_size=50)
-    for start in range(0, 2000, 100):
-        lines = [f"id={n} took {n * 7}ms" for n in range(start, start + 100)]
-        assert_same(tokenizer.tokenize_lines(lines), lines)
-        assert len(tokenizer._entries) <= 50
+# ------------------------------------------------------------------------------------------------
+# the tokenizer's own corpora, through the batch path
+# ------------------------------------------------------------------------------------------------
 
 
-def test_non_str_lines_are_a_data_error():
-    with pytest.raises(DataError):
-        BatchTokenizer().tokenize_lines(["ok", b"bytes"])
+def _string_constants_of_tokenizer_tests() -> list[str]:
+    """Every string literal in tests/test_tokenize.py: RFC examples, prose lines, edge cases."""
+    tree = ast.parse(Path(reference_corpora.__file__).read_text(encoding="utf-8"))
+    found = [node.value for node in ast.walk(tree) if isinstance(node, ast.Constant) and isinstance(node.value, str)]
+    return list(dict.fromkeys(found))
+
+
+def test_tokenizer_test_literals():
+    # Each literal alone and all of them as one batch (RFC 4291, 5952, 5424, 3339, 3986, 4122
+    # examples among them, from memory as noted in tests/test_tokenize.py).
+    literals = _string_constants_of_tokenizer_tests()
+    assert len(literals) > 300
+    tokenize_twice(literals)
+    tokenize_twice([" ".join(literals)])
+
+
+def test_named_corpora_of_the_tokenizer_tests():
+    # The lists the tokenizer tests check against ipaddress, datetime, uuid and urllib.parse.
+    corpora = [
+        reference_corpora.RFC4291_FORMS,  # RFC 4291 section 2.2
+        [form for pair in reference_corpora.RFC5952_RECOMMENDED for form in pair],  # RFC 5952 section 4
+        reference_corpora.RFC5952_SAME_ADDRESS,  # RFC 5952 section 2.1
+        reference_corpora.RFC5424_EXAMPLES,  # RFC 5424 section 6.5
+        reference_corpora.RFC3986_WITH_AUTHORITY + reference_corpora.RFC3986_WITHOUT_AUTHORITY,  # RFC 3986 1.1.2
+        reference_corpora.LOG_FRAGMENTS,
+        reference_corpora.FAST_PATH_EDGES,
+        reference_corpora.ADVERSARIAL_MOTIFS,
+    ]
+    for lines in corpora:
+        tokenize_twice(lines)
+        tokenize_twice([" ".join(lines), "  ".join(lines), "\t".join(lines)])
+
+
+def test_sample_log_in_batches_with_a_small_cache():
+    # The fictional sample log in batches of 64 through one tokenizer whose cache (500 pieces)
+    # fills and clears many times; every batch must equal tokenize.
+    lines = SAMPLE.read_text(encoding="utf-8").splitlines()
+    assert len(lines) >= 1000
+    tokenizer = BatchTokenizer(cache_size=500)
+    for i in range(0, len(lines), 64):
+        assert_same_as_tokenize(lines[i : i + 64], tokenizer.tokenize_lines(lines[i : i + 64]))
+        assert tokenizer.cached_pieces <= 500
+    assert tokenizer.hits > tokenizer.misses > 0
+
+
+def test_demo_stream():
+    # The demo generator's invented stream (about 12 pieces and 21 tokens per line).
+    from streamtag.demo.generate import generate_stream
+
+    lines = [record["text"] for record in generate_stream(3000, seed=11)]
+    tokenizer = BatchTokenizer(cache_size=5_000)
+    for i in range(0, len(lines), 512):
+        assert_same_as_tokenize(lines[i : i + 512], tokenizer.tokenize_lines(lines[i : i + 512]))
+
+
+# ------------------------------------------------------------------------------------------------
+# properties (hypothesis)
+# ------------------------------------------------------------------------------------------------
+
+# Characters and fragments around every rule's edges: white space of several kinds, separators of
+# addresses, times and paths, hex letters, units, quotes and brackets, non-ASCII letters, combining
+# marks, control characters (NUL, ESC, DEL, C1), a lone surrogate, a BOM and an emoji.
+TRICKY = [
+    " ", " ", "  ", "\t", "\x85", "\u3000", "\u00a0", "\x1f", "\n", ".", ":", "::", "-", "/", "@", "\\",
+    "0", "1", "2", "5", "9", "25", "255", "a", "f", "F", "e", "x", "0x", "v", "T", "Z", "z", "ms", "%",
+    "'", '"', "\u2019", "(", ")", "[", "]", "{", "}", "<", ">", "=", ",", ";", "+", "~", "_", "é", "Ä",
+    "न", "日", "\u0301", "\u093f", "\x00", "\x1b", "\x7f", "\x9b", "\udcff", "\ufeff", "😀",
+]
+FRAGMENTS = TRICKY + reference_corpora.LOG_FRAGMENTS + reference_corpora.FAST_PATH_EDGES + [
+    "http://", "https://a.b/c?d=e", "192.0.2.1", ":8080", "2001:db8::1", "fe80::1%eth0", "10.0.0.0/8",
+    "2026-03-01T12:00:00.003Z", "12:00:00,123", "f81d4fae-7dec-11d0-a765-00a0c91e6bf6", "deadbeef1",
+    "00:1a:2b:3c:4d:5e", "mary@x.test", "/var/log/x.log", "C:\\Users\\x", "v1.2.3-rc1", "web-03.example",
+]
+
+lines_strategy = st.lists(st.sampled_from(FRAGMENTS), max_size=30).map("".join)
+
+
+@settings(max_examples=500, deadline=None)
+@given(st.lists(lines_strategy, min_size=1, max_size=8), st.sampled_from([0, 3, 100_000]))
+def test_property_batches_of_log_like_lines(lines, cache_size):
+    # tokenize is the reference, line by line; a small cache forces clearing and uncached pieces.
+    tokenize_twice(lines, cache_size)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.lists(lines_strategy, max_size=6), min_size=1, max_size=4), st.integers(0, 8))
+def test_property_a_stream_of_batches_with_tiny_caches(batches, cache_size):
+    # Same reference; one tokenizer over several batches, twice over, with caches of 0 to 8 pieces,
+    # so batches meet pieces cached earlier while the cache fills and clears mid-batch.
+    tokenizer = BatchTokenizer(cache_size=cache_size)
+    for lines in batches + batches:
+        assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+        assert tokenizer.cached_pieces <= cache_size
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.text(alphabet=sorted({c for c in "".join(TRICKY)}), max_size=60), min_size=1, max_size=6))
+def test_property_batches_of_tricky_characters(lines):
+    # Same reference, on lines of single tricky characters in any order.
+    tokenize_twice(lines, cache_size=50)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.text(max_size=40), min_size=1, max_size=6))
+def test_property_batches_of_arbitrary_text(lines):
+    # Same reference, on hypothesis' default text (all planes, control characters).
+    tokenize_twice(lines)
+
+
+# ------------------------------------------------------------------------------------------------
+# edges: empty input, bad input, long pieces, huge lines
+# ------------------------------------------------------------------------------------------------
+
+
+def test_empty_batch_and_empty_lines():
+    # DEVELOPERS.md (tokenize.py contract): no tokens for empty or all-white-space lines.
+    batch = BatchTokenizer().tokenize_lines([])
+    assert batch.texts == [] and batch.kinds == [] and batch.counts.shape == (0,)
+    assert batch.starts.shape == batch.ends.shape == (0,)
+    batch = BatchTokenizer().tokenize_lines(["", " ", "   ", "\t"])
+    assert batch.texts == [] and batch.counts.tolist() == [0, 0, 0, 0]
+
+
+def test_kinds_come_from_kinds():
+    # DEVELOPERS.md (tokenize.py contract): every kind is one of KINDS.
+    lines = SAMPLE.read_text(encoding="utf-8").splitlines()[:200]
+    assert set(BatchTokenizer().tokenize_lines(lines).kinds) <= set(KINDS)
+
+
+def test_bad_input_is_a_data_error():
+    # DEVELOPERS.md ground rules: bad input raises a StreamtagError subclass with a one-line message.
+    for bad in (["ok", b"bytes"], [None], None, [1.5]):
+        with pytest.raises(DataError) as error:
+            BatchTokenizer().tokenize_lines(bad)
+        assert "\n" not in str(error.value)
     with pytest.raises(ValueError):
         BatchTokenizer(cache_size=-1)
+
+
+def test_long_pieces_are_tokenized_but_not_cached():
+    # Pieces over 256 characters (a base64 blob, a minified document) are never kept: a log of long
+    # distinct pieces must not fill memory. tokenize is the reference for the tokens.
+    blob = "QUJD" * 100  # base64 alphabet, RFC 4648 section 4
+    lines = [f"user=ann blob={blob}{i} done" for i in range(50)]
+    tokenizer = BatchTokenizer()
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+    assert tokenizer.cached_pieces == 2  # "user=ann" and "done"
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+    assert tokenizer.cached_pieces == 2
+
+
+def test_cache_stays_within_its_size():
+    # Memory stays flat (DEVELOPERS.md ground rules): distinct pieces never exceed cache_size.
+    tokenizer = BatchTokenizer(cache_size=1000)
+    for start in range(0, 20_000, 500):
+        lines = [f"id={n} at 10.0.{n % 256}.{n // 256 % 256} ok" for n in range(start, start + 500)]
+        assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+        assert tokenizer.cached_pieces <= 1000
+    # a single batch with more new pieces than the cache holds is tokenized right and not kept
+    lines = [f"n{n}" for n in range(3000)]
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+    assert tokenizer.cached_pieces <= 1000
+
+
+@pytest.mark.parametrize(
+    "line",
+    [
+        "a " * 32_768,  # 64 KiB of one-character tokens, each its own piece
+        "a," * 32_768,  # 64 KiB of one-character tokens in one piece
+        ("".join(reference_corpora.ADVERSARIAL_MOTIFS) * 1000)[:100_000],  # 100k adversarial characters
+    ],
+)
+def test_huge_lines_equal_tokenize_and_use_memory_like_it(line):
+    # tokenize is the reference for the tokens and for the memory: the batch path may not hold
+    # much more at its peak (tracemalloc, Python's allocation tracer) than tokenize does.
+    def peak(function):
+        tracemalloc.start()
+        try:
+            result = function()
+            return tracemalloc.get_traced_memory()[1], result
+        finally:
+            tracemalloc.stop()
+
+    reference_peak, expected = peak(lambda: tokenize(line))
+    batch_peak, batch = peak(lambda: BatchTokenizer().tokenize_lines([line, line]))
+    assert_same_as_tokenize([line, line], batch)
+    assert len(batch.texts) == 2 * len(expected.texts)
+    assert batch_peak < 8 * reference_peak, (batch_peak, reference_peak)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("motif", ["a ", "a,", "::1:", "http://", "a.", "1.", " ", "".join(reference_corpora.ADVERSARIAL_MOTIFS)])
+def test_linear_time_on_huge_lines(motif):
+    # Ratio only (the method of tests/test_tokenize.py): 100k characters cost about 10x 10k.
+    def batch_of_one(line):
+        return BatchTokenizer().tokenize_lines([line])
+
+    ratio = reference_corpora._cost_ratio(motif, batch_of_one)
+    assert ratio < reference_corpora.LINEAR_RATIO_LIMIT, f"{motif!r}: 100k chars cost {ratio:.1f}x 10k chars"
