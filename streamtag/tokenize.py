@@ -478,7 +478,11 @@ class BatchTokenizer:
                 self._clear()
                 missing[:] = True
                 return self._add_missing(pieces, entries, missing)
-        cache_new = len(short) <= self.cache_size and n_short_rows <= self.max_rows
+        # A batch with more new pieces than the cache holds keeps as many as fit, not none.
+        n_kept = min(len(short), self.cache_size - len(self._entries))
+        rows_kept = np.cumsum(n_tokens[:n_kept])
+        n_kept = int(np.searchsorted(rows_kept, self.max_rows - self._n_rows, side="right"))
+        n_kept_rows = int(rows_kept[n_kept - 1]) if n_kept else 0
         first_row = self._n_rows
         self._reserve(n_rows)
         self._texts[first_row : first_row + n_rows] = texts
@@ -493,10 +497,8 @@ class BatchTokenizer:
         new = dict(zip(distinct, new_entries.view(f"V{2 * _ENTRY.itemsize}").ravel().tolist()))
         filled = b"".join(map(new.__getitem__, missing_pieces))
         entries[missing] = np.frombuffer(filled, dtype=_ENTRY).reshape(-1, 2)
-        if not cache_new:
-            return first_row
-        self._entries.update(islice(new.items(), len(short)))
-        return first_row + n_short_rows
+        self._entries.update(islice(new.items(), n_kept))
+        return first_row + n_kept_rows
 
     def _reserve(self, more_rows: int) -> None:
         """Grow the row tables (doubling) to hold ``more_rows`` beyond those in use."""

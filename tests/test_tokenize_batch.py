@@ -286,10 +286,14 @@ def test_cache_stays_within_its_size():
         lines = [f"id={n} at 10.0.{n % 256}.{n // 256 % 256} ok" for n in range(start, start + 500)]
         assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
         assert tokenizer.cached_pieces <= 1000
-    # a single batch with more new pieces than the cache holds is tokenized right and not kept
+    # a single batch with more new pieces than the cache holds is tokenized right, and the cache
+    # keeps as many of them as fit, which the next batch finds
     lines = [f"n{n}" for n in range(3000)]
     assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
-    assert tokenizer.cached_pieces <= 1000
+    assert tokenizer.cached_pieces == 1000
+    hits = tokenizer.hits
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+    assert tokenizer.hits - hits >= 1000
 
 
 @pytest.mark.parametrize(
