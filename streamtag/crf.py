@@ -29,6 +29,7 @@ import numpy as np
 # Use the compiled kernels of streamtag.crf_kernels for `viterbi` and `decode` if numba imports.
 USE_KERNELS = True
 _kernels = None  # the loaded kernels; False once numba turned out to be unavailable
+_loaded: dict = {}  # crf_kernels loader name -> what it returned, or False (see `compiled`)
 _kernels_lock = threading.Lock()
 
 # A scaled sum of exponentials below this may have lost relative precision (sub-normal range) or
@@ -523,26 +524,41 @@ def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, 
     return Decoded(labels, scores, ForwardBackward(log_alpha, log_beta, log_z, lengths), confidence)
 
 
-def _compiled_kernels(E: np.ndarray):
-    """The compiled kernels (see `crf_kernels.load`), or None to use the numpy code.
+def compiled(loader: str = "load"):
+    """What ``crf_kernels.<loader>()`` returns (compiled kernels), loaded once per process; None to use
+    the numpy code: USE_KERNELS is off, or numba is missing or broken.
 
     Loaded on first use (importing numba and loading cached machine code takes a fraction of a
-    second, which commands that never decode should not pay). None if USE_KERNELS is off, numba
-    is missing or broken, or there are no labels.
+    second, which commands that never decode should not pay). `features` gets its emission kernel
+    here too, so there is one way kernels are loaded.
     """
-    global _kernels
-    if not USE_KERNELS or E.shape[1] == 0:
+    if not USE_KERNELS:
         return None
-    if _kernels is None:
+    found = _loaded.get(loader)
+    if found is None:
         with _kernels_lock:
-            if _kernels is None:
+            found = _loaded.get(loader)
+            if found is None:
                 try:
                     from streamtag import crf_kernels
                 except (ImportError, OSError):  # numba missing, or its compiler library fails to load
-                    _kernels = False
+                    found = False
                 else:
-                    _kernels = crf_kernels.load()
-    return _kernels or None
+                    found = getattr(crf_kernels, loader)()
+                _loaded[loader] = found
+    return found or None
+
+
+def _compiled_kernels(E: np.ndarray):
+    """The decode and Viterbi kernels (see `crf_kernels.load`), or None (see `compiled`; also None
+    when there are no labels)."""
+    global _kernels
+    if E.shape[1] == 0:
+        return None
+    kernels = compiled("load")
+    if _kernels is None and USE_KERNELS:
+        _kernels = kernels or False
+    return kernels
 
 
 def _kernel_weights(E: np.ndarray, trans, start, end) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -1005,24 +1005,11 @@ class _TypeScorer:
             out += (selector @ self.affix_flat).reshape(out.shape)
 
 
-_emission_kernel_loaded = None   # the compiled `crf_kernels.sum_emissions`; False if numba is unavailable
-
-
 def _emission_kernel():
-    """The compiled emission kernel, or None for the numpy code (no numba, or crf.USE_KERNELS off)."""
-    global _emission_kernel_loaded
+    """The compiled emission kernel (`crf_kernels.sum_emissions`), or None for the numpy code."""
     from streamtag import crf
 
-    if not crf.USE_KERNELS:
-        return None
-    if _emission_kernel_loaded is None:
-        try:
-            from streamtag import crf_kernels
-        except (ImportError, OSError):   # numba missing, or its compiler library fails to load
-            _emission_kernel_loaded = False
-        else:
-            _emission_kernel_loaded = crf_kernels.load_emission_kernel()
-    return _emission_kernel_loaded or None
+    return crf.compiled("load_emission_kernel")
 
 
 class EmissionScorer:
