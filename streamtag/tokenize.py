@@ -378,6 +378,12 @@ class TokenBatch(NamedTuple):
     ends: np.ndarray  # (N,) int64
     counts: np.ndarray  # (B,) int64 tokens per line
 
+    def per_line(self) -> list[TokenList]:
+        """The batch cut back into one TokenList per line (for checks and inspection, not hot paths)."""
+        bounds = np.concatenate(([0], np.cumsum(self.counts))).tolist()
+        return [TokenList(self.texts[a:b], self.starts[a:b].tolist(), self.ends[a:b].tolist(), self.kinds[a:b])
+                for a, b in zip(bounds[:-1], bounds[1:])]
+
 
 _MAX_CACHED_PIECE = 256  # longer pieces are tokenized but not cached: a log of long unique runs
 # (base64 blobs, minified JSON) must not fill memory, and such pieces rarely repeat anyway.

@@ -34,14 +34,8 @@ def assert_same_as_tokenize(lines: list[str], batch: TokenBatch) -> None:
     assert batch.starts.dtype == batch.ends.dtype == batch.counts.dtype == np.int64
     assert batch.counts.shape == (len(lines),)
     assert int(batch.counts.sum()) == len(batch.texts)
-    position = 0
-    for line, count in zip(lines, batch.counts.tolist()):
-        expected = tokenize(line)
-        stop = position + count
-        got = (batch.texts[position:stop], batch.starts[position:stop].tolist(),
-               batch.ends[position:stop].tolist(), batch.kinds[position:stop])
-        assert got == (expected.texts, expected.starts, expected.ends, expected.kinds), line
-        position = stop
+    for line, got in zip(lines, batch.per_line()):
+        assert got == tokenize(line), line
 
 
 def tokenize_twice(lines: list[str], cache_size: int = 100_000) -> None:

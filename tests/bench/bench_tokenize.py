@@ -47,15 +47,9 @@ def check_equal(lines: list[str], batch: int) -> int:
     for i in range(0, len(lines), batch):
         chunk = lines[i : i + batch]
         result = tokenizer.tokenize_lines(chunk)
-        position = 0
-        for line, count in zip(chunk, result.counts.tolist()):
-            expected = tokenize(line)
-            stop = position + count
-            got = (result.texts[position:stop], result.starts[position:stop].tolist(),
-                   result.ends[position:stop].tolist(), result.kinds[position:stop])
-            if got != (expected.texts, expected.starts, expected.ends, expected.kinds):
+        for line, got in zip(chunk, result.per_line()):
+            if got != tokenize(line):
                 raise SystemExit(f"batch tokens differ from tokenize on line {line!r}")
-            position = stop
         n_tokens += len(result.texts)
     return n_tokens
 
