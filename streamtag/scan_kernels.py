@@ -1,0 +1,856 @@
+r"""Compiled (numba) one-pass tokenizer for printable-ASCII pieces; the same tokens as `tokenize`.
+
+`scan` walks a batch string (lines joined with ' ', as code points) piece by piece, a piece being a
+maximal run between ' ' characters (the pieces of ``joined.split(' ')``). Cutting there is exact
+(see the comment above `tokenize.BatchTokenizer`). Within a piece it does what the token pattern
+does: at each position it tries the full rules of `tokenize._RULES` in their priority order (the
+pattern's fast paths are proven not to change any token, so they are left out) and takes the
+first that matches, with the regex's backtracking where a quantifier is not possessive. Each rule
+below names the part of the pattern it follows and how its candidates are ordered.
+
+Rules scanned: timestamp, ipv4, uuid, mac, path, version, hex, number, word, host, ident, punct.
+Rules not scanned: url, email and ipv6. At each position where one of them could match before a
+rule of lower priority (a test that never misses a match, but may report one that the full rule
+would reject), the whole piece is left *unsure* and no tokens are given for it; so is a piece with
+any character outside printable ASCII (0x21..0x7e: tab, controls, any non-ASCII character) or
+longer than `MAX_PIECE` characters. The caller tokenizes unsure pieces with the pattern. In a
+printable-ASCII piece every character is a word character or punctuation, so "symbol" never occurs.
+
+Exactness is checked against `tokenize` (tests/test_scan_kernels.py); being unsure is always
+correct, it only costs speed.
+"""
+
+from __future__ import annotations
+
+import threading
+import warnings
+
+import numba
+import numpy as np
+
+from streamtag.crf_kernels import _jit, _jit_cached
+from streamtag.tokenize import KINDS
+
+__all__ = ["MAX_PIECE", "RULES_SCANNED", "scan"]
+
+# Longer pieces (base64 blobs, minified JSON) are left to the pattern: rare in logs, and a bound on
+# the piece keeps any rescanning inside a piece cheap whatever the input.
+MAX_PIECE = 1024
+
+RULES_SCANNED = ("timestamp", "ipv4", "uuid", "mac", "path", "version", "hex", "number", "word", "host",
+                 "ident", "punct")
+
+# Rule codes inside the kernel (indices into _KIND_CODES, which maps them to indices into KINDS;
+# passed as an argument so the cached machine code never holds a stale order of KINDS).
+_TIMESTAMP, _IPV4, _UUID, _MAC, _PATH, _VERSION, _HEX, _NUMBER, _WORD, _HOST, _IDENT, _PUNCT = range(12)
+_KIND_CODES = np.array([KINDS.index(rule) for rule in RULES_SCANNED], dtype=np.int8)
+_UNSURE = -2  # a rule end meaning "a rule not scanned could match here"
+# Zero bytes after the string (see scan_kernel): the farthest fixed-offset read past a position is
+# 45 characters (urn:uuid: and a UUID), and every scan stops at the first zero.
+_PAD = 64
+
+_SPACE, _DOT, _COLON, _DASH, _PLUS, _SLASH, _BACKSLASH, _TILDE = 32, 46, 58, 45, 43, 47, 92, 126
+_APOSTROPHE, _PERCENT, _AT, _UNDERSCORE, _COMMA = 39, 37, 64, 95, 44
+
+
+# ----------------------------------------------------------------------------------------------------
+# Characters (ASCII only: every piece scanned is printable ASCII, so \w is [A-Za-z0-9_], \d is
+# [0-9], the pattern's letter class is [A-Za-z], and its combining marks never occur)
+
+
+@_jit
+def _is_digit(c):
+    return 48 <= c <= 57
+
+
+@_jit
+def _is_letter(c):
+    return 65 <= c <= 90 or 97 <= c <= 122
+
+
+@_jit
+def _is_word(c):
+    return 48 <= c <= 57 or 65 <= c <= 90 or 97 <= c <= 122 or c == _UNDERSCORE
+
+
+@_jit
+def _is_alnum(c):
+    return 48 <= c <= 57 or 65 <= c <= 90 or 97 <= c <= 122
+
+
+@_jit
+def _is_hex(c):
+    return 48 <= c <= 57 or 65 <= c <= 70 or 97 <= c <= 102
+
+
+@_jit
+def _skip_digits(s, i):
+    while _is_digit(s[i]):
+        i += 1
+    return i
+
+
+@_jit
+def _skip_word(s, i):
+    while _is_word(s[i]):
+        i += 1
+    return i
+
+
+@_jit
+def _skip_letters(s, i):
+    while _is_letter(s[i]):
+        i += 1
+    return i
+
+
+@_jit
+def _skip_alnum(s, i):
+    while _is_alnum(s[i]):
+        i += 1
+    return i
+
+
+@_jit
+def _skip_hex(s, i):
+    while _is_hex(s[i]):
+        i += 1
+    return i
+
+
+@_jit
+def _digits_up_to(s, i, most):
+    """Number of digits from i, at most `most` (a greedy {1,most} takes this many first)."""
+    k = 0
+    while k < most and _is_digit(s[i + k]):
+        k += 1
+    return k
+
+
+@_jit
+def _name_goes_on(s, e):
+    """_NAME_GOES_ON at e: a word character, '-'s then one, or '.' then one."""
+    c = s[e]
+    if _is_word(c):
+        return True
+    if c == _DASH:
+        while s[e] == _DASH:
+            e += 1
+        return _is_word(s[e])
+    return c == _DOT and _is_word(s[e + 1])
+
+
+# ----------------------------------------------------------------------------------------------------
+# timestamp: _TIMESTAMP's three forms. _FRACTION's {1,9} and the optional parts are greedy, so the
+# candidates are tried longest first and the first one the closing look-ahead accepts wins.
+
+_TS_DATE, _TS_BASIC, _TS_TIME = 0, 1, 2  # which closing look-ahead (form A, B, C of _TIMESTAMP)
+
+
+@_jit
+def _timestamp_end_ok(s, e, form):
+    """(?!\\w|:[0-9]) after a date form, (?!\\w) after the basic form, (?!\\w|:\\w) after a time."""
+    c = s[e]
+    if _is_word(c):
+        return False
+    if c == _COLON:
+        after = s[e + 1]
+        if form == _TS_DATE and _is_digit(after):
+            return False
+        if form == _TS_TIME and _is_word(after):
+            return False
+    return True
+
+
+@_jit
+def _offset_then_end(s, q, form):
+    """First accepted end after _OFFSET at q: 'Z', '+hh:mm', '+hhmm', '+hh' (in that order), none; -1."""
+    c = s[q]
+    if c == 90 or c == 122:  # Z z
+        if _timestamp_end_ok(s, q + 1, form):
+            return q + 1
+    elif (c == _PLUS or c == _DASH) and 48 <= s[q + 1] <= 50 and _is_digit(s[q + 2]):
+        r = q + 3
+        if (s[r] == _COLON and 48 <= s[r + 1] <= 53 and _is_digit(s[r + 2])
+                and _timestamp_end_ok(s, r + 3, form)):
+            return r + 3
+        if 48 <= s[r] <= 53 and _is_digit(s[r + 1]) and _timestamp_end_ok(s, r + 2, form):
+            return r + 2
+        if _timestamp_end_ok(s, r, form):
+            return r
+    if _timestamp_end_ok(s, q, form):
+        return q
+    return -1
+
+
+@_jit
+def _fraction_offset_then_end(s, q, form):
+    """First accepted end after '(?:[.,][0-9]{1,9})?' then _OFFSET at q (9 digits down to 1, then none)."""
+    c = s[q]
+    if c == _DOT or c == _COMMA:
+        for digits in range(_digits_up_to(s, q + 1, 9), 0, -1):
+            e = _offset_then_end(s, q + 1 + digits, form)
+            if e >= 0:
+                return e
+    return _offset_then_end(s, q, form)
+
+
+@_jit
+def _is_hh_mm(s, i):
+    """[0-2][0-9]:[0-5][0-9] at i."""
+    return (48 <= s[i] <= 50 and _is_digit(s[i + 1]) and s[i + 2] == _COLON
+            and 48 <= s[i + 3] <= 53 and _is_digit(s[i + 4]))
+
+
+@_jit
+def _is_seconds(s, i):
+    """:[0-6][0-9] at i."""
+    return s[i] == _COLON and 48 <= s[i + 1] <= 54 and _is_digit(s[i + 2])
+
+
+@_jit
+def _match_timestamp(s, p):
+    # Form A: [0-9]{4}-[01][0-9]-[0-3][0-9](?:[Tt]_TIME _OFFSET)?(?!\w|:[0-9])
+    if (_digits_up_to(s, p, 4) == 4 and s[p + 4] == _DASH and 48 <= s[p + 5] <= 49
+            and _is_digit(s[p + 6]) and s[p + 7] == _DASH
+            and 48 <= s[p + 8] <= 51 and _is_digit(s[p + 9])):
+        q = p + 10
+        t = s[q]
+        if (t == 84 or t == 116) and _is_hh_mm(s, q + 1):  # T t
+            minutes_end = q + 6
+            if _is_seconds(s, minutes_end):
+                e = _fraction_offset_then_end(s, minutes_end + 3, _TS_DATE)
+                if e >= 0:
+                    return e
+            e = _offset_then_end(s, minutes_end, _TS_DATE)
+            if e >= 0:
+                return e
+        if _timestamp_end_ok(s, q, _TS_DATE):
+            return q
+    # Form B: [0-9]{8}[Tt][0-9]{6}(?:[.,][0-9]{1,9})?_OFFSET(?!\w)
+    if _digits_up_to(s, p, 8) == 8:
+        t = s[p + 8]
+        if (t == 84 or t == 116) and _digits_up_to(s, p + 9, 6) == 6:
+            e = _fraction_offset_then_end(s, p + 15, _TS_BASIC)
+            if e >= 0:
+                return e
+    # Form C: [0-2][0-9]:[0-5][0-9]:[0-6][0-9]_FRACTION _OFFSET(?!\w|:\w)
+    if _is_hh_mm(s, p) and _is_seconds(s, p + 5):
+        return _fraction_offset_then_end(s, p + 8, _TS_TIME)
+    return -1
+
+
+# ----------------------------------------------------------------------------------------------------
+# ipv4: _IPV4 = _OCTET(\._OCTET){3}(?::[0-9]{1,5}|/[0-9]{1,2})?_END_IPV4
+
+
+@_jit
+def _octet_end(s, i):
+    """End of the atomic _OCTET at i (its first matching alternative, never given back), or -1."""
+    c0 = s[i]
+    c1 = s[i + 1]
+    c2 = s[i + 2]
+    if c0 == 50 and c1 == 53 and 48 <= c2 <= 53:  # 25[0-5]
+        return i + 3
+    if c0 == 50 and 48 <= c1 <= 52 and _is_digit(c2):  # 2[0-4][0-9]
+        return i + 3
+    if c0 == 49 and _is_digit(c1) and _is_digit(c2):  # 1[0-9][0-9]
+        return i + 3
+    if 49 <= c0 <= 57 and _is_digit(c1):  # [1-9]?[0-9], the optional digit taken first
+        return i + 2
+    if _is_digit(c0):
+        return i + 1
+    return -1
+
+
+@_jit
+def _ipv4_end_ok(s, e):
+    """_END_IPV4: (?!\\w|\\.\\w)."""
+    c = s[e]
+    return not (_is_word(c) or (c == _DOT and _is_word(s[e + 1])))
+
+
+@_jit
+def _match_ipv4(s, p):
+    q = _octet_end(s, p)
+    for _ in range(3):
+        if q < 0 or s[q] != _DOT:
+            return -1
+        q = _octet_end(s, q + 1)
+    if q < 0:
+        return -1
+    c = s[q]
+    most = 5 if c == _COLON else 2 if c == _SLASH else 0  # :port or /prefix, longest first
+    if most:
+        for digits in range(_digits_up_to(s, q + 1, most), 0, -1):
+            if _ipv4_end_ok(s, q + 1 + digits):
+                return q + 1 + digits
+    if _ipv4_end_ok(s, q):
+        return q
+    return -1
+
+
+# ----------------------------------------------------------------------------------------------------
+# rules not scanned: a test at a position that is true whenever the rule would match there
+
+
+@_jit
+def _url_may_match(s, p):
+    """_URL needs [A-Za-z][A-Za-z0-9+.\\-]{0,31}:// at p (exactly: the run cannot contain ':')."""
+    if not _is_letter(s[p]):
+        return False
+    j = p + 1
+    while j - p <= 31:
+        c = s[j]
+        if not (_is_alnum(c) or c == _PLUS or c == _DOT or c == _DASH):
+            break
+        j += 1
+    return s[j] == _COLON and s[j + 1] == _SLASH and s[j + 2] == _SLASH
+
+
+@_jit
+def _email_may_match(s, p):
+    """_EMAIL needs \\w[\\w.+\\-]{0,63}+(?<!\\.)@ at p (the domain is not checked)."""
+    if not _is_word(s[p]):
+        return False
+    j = p + 1
+    while j - p <= 63:
+        c = s[j]
+        if not (_is_word(c) or c == _DOT or c == _PLUS or c == _DASH):
+            break
+        j += 1
+    return s[j] == _AT and s[j - 1] != _DOT
+
+
+@_jit
+def _ipv6_may_match(s, p):
+    """_IPV6_GUARD holds at p and its hex/colon run has '::' or at least 6 colons (every IPv6 text
+    form of RFC 3986 section 3.2.2 has one or the other; a MAC's five colons do not)."""
+    q = p
+    k = 0
+    while k < 4 and _is_hex(s[q]):
+        q += 1
+        k += 1
+    fields = 0
+    double_colon = False
+    while fields < 8 and s[q] == _COLON:
+        if s[q + 1] == _COLON:
+            double_colon = True
+        q += 1
+        k = 0
+        while k < 4 and _is_hex(s[q]):
+            q += 1
+            k += 1
+        fields += 1
+    if fields < 2:
+        return False
+    c = s[q]
+    if c == _COLON or _is_hex(c):  # the guard's closing look-ahead fails
+        return False
+    return double_colon or fields >= 6
+
+
+# ----------------------------------------------------------------------------------------------------
+# uuid, mac, path
+
+
+@_jit
+def _uuid_body_end(s, q):
+    """End of 8-4-4-4-12 hex digits at q, or -1."""
+    for group in (8, 4, 4, 4, 12):
+        for _ in range(group):
+            if not _is_hex(s[q]):
+                return -1
+            q += 1
+        if group != 12:
+            if s[q] != _DASH:
+                return -1
+            q += 1
+    return q
+
+
+@_jit
+def _is_urn_uuid(s, p):
+    """[Uu][Rr][Nn]:[Uu][Uu][Ii][Dd]: at p."""
+    letters = (117, 114, 110, 58, 117, 117, 105, 100, 58)  # urn:uuid: in lower case
+    for k in range(9):
+        c = s[p + k]
+        if c != letters[k] and not (letters[k] != 58 and c == letters[k] - 32):
+            return False
+    return True
+
+
+@_jit
+def _match_uuid(s, p):
+    if _is_urn_uuid(s, p):  # the optional urn:uuid: prefix, taken first
+        e = _uuid_body_end(s, p + 9)
+        if e >= 0 and not _name_goes_on(s, e):
+            return e
+    e = _uuid_body_end(s, p)
+    if e >= 0 and not _name_goes_on(s, e):
+        return e
+    return -1
+
+
+@_jit
+def _match_mac(s, p):
+    """_MAC: six hex pairs joined by ':' (tried first) or by '-', then _END_MAC (?![\\w:\\-]|\\.\\w)."""
+    for separator in (_COLON, _DASH):
+        q = p
+        ok = True
+        for pair in range(6):
+            if pair and s[q] != separator:
+                ok = False
+                break
+            q += 1 if pair else 0
+            if not (_is_hex(s[q]) and _is_hex(s[q + 1])):
+                ok = False
+                break
+            q += 2
+        if ok:
+            c = s[q]
+            if not (_is_word(c) or c == _COLON or c == _DASH or (c == _DOT and _is_word(s[q + 1]))):
+                return q
+    return -1
+
+
+@_jit
+def _is_path_char(c):
+    """_PATH_CHAR [\\w.+@%~\\-/]."""
+    return _is_word(c) or c == _DOT or c == _PLUS or c == _AT or c == _PERCENT or c == _TILDE or c == _DASH or c == _SLASH
+
+
+@_jit
+def _is_win_char(c):
+    """_WIN_CHAR [\\w.+@%~$#&!\\-\\\\/]."""
+    return _is_path_char(c) or c == 36 or c == 35 or c == 38 or c == 33 or c == _BACKSLASH
+
+
+@_jit
+def _unix_tail_end(s, q):
+    """End of _PATH_CHAR*_PATH_END at q: the greedy run gives back its trailing '.'s; -1 if all are."""
+    end = -1
+    while True:
+        c = s[q]
+        if not _is_path_char(c):
+            return end
+        q += 1
+        if c != _DOT:
+            end = q
+
+
+@_jit
+def _windows_tail_end(s, q):
+    """End after the optional (?:_WIN_CHAR*_WIN_END)? at q (q itself if it cannot match)."""
+    end = q
+    while True:
+        c = s[q]
+        if not _is_win_char(c):
+            return end
+        q += 1
+        if c != _DOT:
+            end = q
+
+
+@_jit
+def _match_path(s, p):
+    c0 = s[p]
+    if not _is_word(s[p - 1]):  # the look-behind (?<![\w]) of the first two forms
+        # Unix: (?:~[\w.\-]{0,32}+|\.\.?)?/_PATH_CHAR*_PATH_END, prefixes in the pattern's order.
+        if c0 == _TILDE:
+            j = p + 1
+            while j - p <= 32:
+                c = s[j]
+                if not (_is_word(c) or c == _DOT or c == _DASH):
+                    break
+                j += 1
+            if s[j] == _SLASH:
+                e = _unix_tail_end(s, j + 1)
+                if e >= 0:
+                    return e
+        elif c0 == _DOT:
+            if s[p + 1] == _DOT and s[p + 2] == _SLASH:
+                e = _unix_tail_end(s, p + 3)
+                if e >= 0:
+                    return e
+            if s[p + 1] == _SLASH:
+                e = _unix_tail_end(s, p + 2)
+                if e >= 0:
+                    return e
+        elif c0 == _SLASH:
+            e = _unix_tail_end(s, p + 1)
+            if e >= 0:
+                return e
+        # Windows drive: [A-Za-z]:[\\/](?:_WIN_CHAR*_WIN_END)?
+        c2 = s[p + 2]
+        if _is_letter(c0) and s[p + 1] == _COLON and (c2 == _BACKSLASH or c2 == _SLASH):
+            return _windows_tail_end(s, p + 3)
+    # UNC: \\\\[\w.\-]++\\(?:_WIN_CHAR*_WIN_END)?
+    if c0 == _BACKSLASH and s[p + 1] == _BACKSLASH:
+        j = p + 2
+        while True:
+            c = s[j]
+            if not (_is_word(c) or c == _DOT or c == _DASH):
+                break
+            j += 1
+        if j > p + 2 and s[j] == _BACKSLASH:
+            return _windows_tail_end(s, j + 1)
+    return -1
+
+
+# ----------------------------------------------------------------------------------------------------
+# version, hex, number
+
+
+@_jit
+def _version_parts_end(s, q, iterations):
+    """End after '[\\-+~][0-9A-Za-z]++' at q (the caller checked it) and `iterations` of
+    '[.\\-+][0-9A-Za-z]++'; also returns how many iterations were possible (at most 10)."""
+    e = _skip_alnum(s, q + 1)
+    done = 0
+    while done < iterations:
+        c = s[e]
+        if not ((c == _DOT or c == _DASH or c == _PLUS) and _is_alnum(s[e + 1])):
+            break
+        e = _skip_alnum(s, e + 1)
+        done += 1
+    return e, done
+
+
+@_jit
+def _match_version(s, p):
+    c0 = s[p]
+    if c0 == 86 or c0 == 118:  # [vV][0-9]++(?:\.[0-9]++)*+
+        if not _is_digit(s[p + 1]):
+            return -1
+        q = _skip_digits(s, p + 1)
+    elif _is_digit(c0):  # [0-9]++\.[0-9]++\.[0-9]++(?:\.[0-9]++)*+
+        q = _skip_digits(s, p)
+        for _ in range(2):
+            if not (s[q] == _DOT and _is_digit(s[q + 1])):
+                return -1
+            q = _skip_digits(s, q + 1)
+    else:
+        return -1
+    while s[q] == _DOT and _is_digit(s[q + 1]):
+        q = _skip_digits(s, q + 1)
+    # _VERSION_SUFFIX: (?:[A-Za-z]++[0-9]*+)? then (?:[\-+~][0-9A-Za-z]++(?:[.\-+][0-9A-Za-z]++){0,10})?,
+    # both greedy: letters taken first, then the parts with 10 down to 0 repeats, then without.
+    for with_letters in (True, False):
+        if with_letters:
+            if not _is_letter(s[q]):
+                continue
+            q1 = _skip_digits(s, _skip_letters(s, q))
+        else:
+            q1 = q
+        c = s[q1]
+        if (c == _DASH or c == _PLUS or c == _TILDE) and _is_alnum(s[q1 + 1]):
+            e, possible = _version_parts_end(s, q1, 10)
+            for repeats in range(possible, -1, -1):
+                if repeats < possible:
+                    e, _ = _version_parts_end(s, q1, repeats)
+                if not _name_goes_on(s, e):
+                    return e
+        if not _name_goes_on(s, q1):
+            return q1
+    return -1
+
+
+@_jit
+def _match_hex(s, p):
+    c1 = s[p + 1]
+    if s[p] == 48 and (c1 == 88 or c1 == 120) and _is_hex(s[p + 2]):  # 0[xX]_HEX++
+        e = _skip_hex(s, p + 2)
+        if not _name_goes_on(s, e):
+            return e
+    # _HEX{8,}+ with at least one letter a-f and one digit (the two look-aheads of _HEXID)
+    e = p
+    letter = False
+    digit = False
+    while True:
+        c = s[e]
+        if _is_digit(c):
+            digit = True
+        elif _is_hex(c):
+            letter = True
+        else:
+            break
+        e += 1
+    if e - p >= 8 and letter and digit and not _name_goes_on(s, e):
+        return e
+    return -1
+
+
+@_jit
+def _number_end_ok(s, e):
+    """_END_NUM: (?!\\w|\\.\\d)."""
+    c = s[e]
+    return not (_is_word(c) or (c == _DOT and _is_digit(s[e + 1])))
+
+
+@_jit
+def _match_number(s, p):
+    c0 = s[p]
+    d = p
+    if c0 == _DASH or c0 == _PLUS:  # (?:(?<![\w.\-+])[\-+])? : without the sign \d cannot match at p
+        before = s[p - 1]
+        if _is_word(before) or before == _DOT or before == _DASH or before == _PLUS:
+            return -1
+        d = p + 1
+    if not _is_digit(s[d]):
+        return -1
+    # \d++(?:\.\d++)?+(?:[eE][\-+]?\d++)?+ : possessive, one reading
+    q = _skip_digits(s, d)
+    if s[q] == _DOT and _is_digit(s[q + 1]):
+        q = _skip_digits(s, q + 1)
+    c = s[q]
+    if c == 69 or c == 101:  # e E
+        sign = s[q + 1]
+        r = q + 2 if sign == _DASH or sign == _PLUS else q + 1
+        if _is_digit(s[r]):
+            q = _skip_digits(s, r)
+    # unit (?:%|[A-Za-z]{1,6}+(?:/[A-Za-z]{1,3}+)?)? : greedy, so with the unit first
+    c = s[q]
+    if c == _PERCENT:
+        if _number_end_ok(s, q + 1):
+            return q + 1
+    elif _is_letter(c):
+        q2 = q
+        while q2 - q < 6 and _is_letter(s[q2]):
+            q2 += 1
+        if s[q2] == _SLASH and _is_letter(s[q2 + 1]):
+            q3 = q2 + 1
+            while q3 - q2 - 1 < 3 and _is_letter(s[q3]):
+                q3 += 1
+            if _number_end_ok(s, q3):
+                return q3
+        if _number_end_ok(s, q2):
+            return q2
+    if _number_end_ok(s, q):
+        return q
+    return -1
+
+
+# ----------------------------------------------------------------------------------------------------
+# word, host, ident, punct
+
+
+@_jit
+def _match_word(s, p):
+    """_WORD: letters, then ('|-)letters repeats (possessive), unless a name or 'x goes on."""
+    if not _is_letter(s[p]):
+        return -1
+    q = _skip_letters(s, p)
+    while True:
+        c = s[q]
+        if (c == _APOSTROPHE or c == _DASH) and _is_letter(s[q + 1]):
+            q = _skip_letters(s, q + 1)
+        else:
+            break
+    if _name_goes_on(s, q) or (s[q] == _APOSTROPHE and _is_word(s[q + 1])):
+        return -1
+    return q
+
+
+@_jit
+def _name_end(s, i):
+    """End of _NAME \\w++(?:-++\\w++)*+ at i (a word character)."""
+    q = _skip_word(s, i)
+    while s[q] == _DASH:
+        j = q
+        while s[j] == _DASH:
+            j += 1
+        if not _is_word(s[j]):
+            break
+        q = _skip_word(s, j)
+    return q
+
+
+@_jit
+def _match_host(s, p):
+    """_HOST: _NAME(?:\\._NAME)++."""
+    q = _name_end(s, p)
+    dots = 0
+    while s[q] == _DOT and _is_word(s[q + 1]):
+        q = _name_end(s, q + 1)
+        dots += 1
+    return q if dots else -1
+
+
+@_jit
+def _match_ident(s, p):
+    """_IDENT: _NAME(?:'_NAME)*+ ; always matches at a word character."""
+    q = _name_end(s, p)
+    while s[q] == _APOSTROPHE and _is_word(s[q + 1]):
+        q = _name_end(s, q + 1)
+    return q
+
+
+@_jit
+def _match_punct(s, p):
+    """_PUNCT: a run of two or more of - = . * # ~, else one character (all ASCII punctuation)."""
+    c = s[p]
+    if (c == _DASH or c == 61 or c == _DOT or c == 42 or c == 35 or c == _TILDE) and s[p + 1] == c:
+        q = p + 2
+        while s[q] == c:
+            q += 1
+        return q
+    return p + 1
+
+
+# ----------------------------------------------------------------------------------------------------
+# dispatch in the pattern's order, and the kernel
+
+
+@_jit
+def _match(s, p):
+    """(rule, end) of the token at p: the first rule of tokenize._RULES that matches; end _UNSURE
+    where a rule not scanned could match first."""
+    if _is_word(s[p]):  # the pattern's (?=\w) branch
+        e = _match_timestamp(s, p)
+        if e >= 0:
+            return _TIMESTAMP, e
+        e = _match_ipv4(s, p)
+        if e >= 0:
+            return _IPV4, e
+        if _url_may_match(s, p) or _email_may_match(s, p):
+            return _PUNCT, _UNSURE
+        e = _match_uuid(s, p)
+        if e >= 0:
+            return _UUID, e
+        if _ipv6_may_match(s, p):
+            return _PUNCT, _UNSURE
+        e = _match_mac(s, p)
+        if e >= 0:
+            return _MAC, e
+        e = _match_path(s, p)
+        if e >= 0:
+            return _PATH, e
+        e = _match_version(s, p)
+        if e >= 0:
+            return _VERSION, e
+        e = _match_hex(s, p)
+        if e >= 0:
+            return _HEX, e
+        e = _match_number(s, p)
+        if e >= 0:
+            return _NUMBER, e
+        e = _match_word(s, p)
+        if e >= 0:
+            return _WORD, e
+        e = _match_host(s, p)
+        if e >= 0:
+            return _HOST, e
+        return _IDENT, _match_ident(s, p)
+    if _ipv6_may_match(s, p):  # the other branch: ipv6, path, number, punct
+        return _PUNCT, _UNSURE
+    e = _match_path(s, p)
+    if e >= 0:
+        return _PATH, e
+    e = _match_number(s, p)
+    if e >= 0:
+        return _NUMBER, e
+    return _PUNCT, _match_punct(s, p)
+
+
+@_jit
+def _scan_piece(s, a, b, kind_codes, starts, ends, kinds, n):
+    """Tokens of the piece s[a:b] appended at n (offsets in the string: one less than in s); the
+    new count, or -1 if the piece is unsure."""
+    p = a
+    while p < b:
+        rule, e = _match(s, p)
+        if e == _UNSURE:
+            return -1
+        starts[n] = p - 1
+        ends[n] = e - 1
+        kinds[n] = kind_codes[rule]
+        n += 1
+        p = e
+    return n
+
+
+@_jit_cached
+def scan_kernel(cp, kind_codes):
+    """(starts (n,), ends (n,), kinds (n,) int8, unsure (P,) bool) of the batch string cp (C,)
+    uint32; see `scan`."""
+    size = cp.shape[0]
+    # The string as bytes s (1 + C + _PAD,): s[i + 1] is character i, 0 for ' ' and for the
+    # edges. No rule matches a 0, so every scan stops there as the pattern stops at a ' ' or
+    # the edge of the string, and no read needs a bounds check. Other characters than printable
+    # ASCII make their piece unsure (and read as DEL, which no rule here matches either).
+    s = np.zeros(size + 1 + _PAD, dtype=np.uint8)
+    n_pieces = 1
+    for i in range(size):
+        if cp[i] == _SPACE:
+            n_pieces += 1
+    unsure = np.zeros(n_pieces, dtype=np.bool_)
+    piece = 0
+    for i in range(size):
+        c = cp[i]
+        if c == _SPACE:
+            piece += 1
+        elif 0x21 <= c <= 0x7E:
+            s[i + 1] = c
+        else:
+            s[i + 1] = 0x7F
+            unsure[piece] = True
+    starts = np.empty(size, dtype=np.int64)
+    ends = np.empty(size, dtype=np.int64)
+    kinds = np.empty(size, dtype=np.int8)
+    n = 0
+    piece = 0
+    a = 1
+    for i in range(1, size + 2):
+        if i == size + 1 or s[i] == 0:
+            if not unsure[piece]:
+                found = -1 if i - a > MAX_PIECE else _scan_piece(s, a, i, kind_codes, starts, ends, kinds, n)
+                if found < 0:
+                    unsure[piece] = True
+                else:
+                    n = found
+            piece += 1
+            a = i + 1
+    return starts[:n].copy(), ends[:n].copy(), kinds[:n].copy(), unsure
+
+
+_LOAD_LOCK = threading.Lock()
+_loaded = None
+
+
+def _load():
+    """`scan_kernel`, compiled (from numba's cache if it can be read, else compiled afresh, silently:
+    a corrupt or read-only cache must not stop tagging)."""
+    global scan_kernel, _loaded
+    with _LOAD_LOCK, warnings.catch_warnings():
+        if _loaded is None:
+            warnings.simplefilter("ignore", numba.NumbaWarning)
+            sample = np.frombuffer("a 1".encode("utf-32-le"), dtype=np.uint32)
+            try:
+                scan_kernel(sample, _KIND_CODES)
+            except Exception:  # noqa: BLE001 - a cache fault; a real compile error recurs below and is raised
+                scan_kernel = _jit(scan_kernel.py_func)
+                scan_kernel(sample, _KIND_CODES)
+            _loaded = scan_kernel
+    return _loaded
+
+
+def scan(code_points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Tokens of a batch string, in one compiled pass.
+
+    code_points (C,) uint32: the batch string (lines joined with ' '), one code point per character,
+    e.g. ``np.frombuffer(joined.encode('utf-32-le', 'surrogatepass'), dtype=np.uint32)``.
+
+    Returns starts (n,) int64 and ends (n,) int64, the tokens' offsets in the string, kinds (n,) int8
+    (indices into `tokenize.KINDS`), and unsure (P,) bool, one flag per piece of ``joined.split(' ')``
+    (P = number of ' ' + 1, empty pieces included). The tokens are those of the pieces not unsure,
+    in order; for each such piece they are exactly ``tokenize(piece)``, shifted by its offset. The
+    pieces marked unsure have no tokens here: tokenize them with the pattern (see the module
+    docstring for when a piece is unsure).
+    """
+    cp = np.ascontiguousarray(code_points, dtype=np.uint32)
+    if cp.ndim != 1:
+        raise ValueError(f"scan expects a 1-D array of code points, got shape {cp.shape}")
+    if not cp.flags.writeable:  # numba compiles a separate version for read-only arrays
+        cp = cp.copy()
+    return _load()(cp, _KIND_CODES)
