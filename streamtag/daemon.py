@@ -1,6 +1,7 @@
 """``streamtag watch``: follow files, tag every new line, write records, checkpoint; for months.
 
-One main thread does reading, tagging and writing. The watchdog observer (``ChangeWatcher``) only
+One main thread does reading, tagging and writing; a second thread only waits for the fsyncs and
+the checkpoint of the last batch written (see below). The watchdog observer (``ChangeWatcher``) only
 puts change hints into a queue; the loop waits on that queue with a short timeout and falls back
 to polling. Signal handlers only set flags, which the loop reads between batches.
 
@@ -10,6 +11,10 @@ outputs are cut back to the lengths in the checkpoint and every file resumes at 
 offset. A crash at any moment therefore re-reads at most the batch that was not checkpointed and
 the cut removes its records if they had been written: each input line is in the output exactly once
 (common practice: at-least-once delivery + idempotent checkpoint = effectively once).
+
+While the records of batch k are fsynced and its checkpoint saved (in the background thread, which
+only waits for the disk), the main thread reads and tags batch k + 1; it writes nothing of batch
+k + 1 until batch k's checkpoint has landed, and redoes in the foreground whatever failed there.
 
 A failed write (disk full, EACCES, EIO) keeps the batch in hand, cuts the partial write back to the
 last good length, and retries with exponential backoff; reading pauses and the checkpoint does not
@@ -27,6 +32,7 @@ import signal
 import sys
 import threading
 import time
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
@@ -134,23 +140,40 @@ class BatchWriter:
         self.review = review
 
     def write(self, output_bytes: bytes, review_bytes: bytes) -> None:
-        files = ((self.output, output_bytes), (self.review, review_bytes))
+        """Append and fsync both (see `append` and `sync`); raises OSError with both cut back."""
+        self.append(output_bytes, review_bytes)
+        self.sync(len(output_bytes), len(review_bytes))
+
+    def append(self, output_bytes: bytes, review_bytes: bytes) -> None:
+        """Write both, not yet synced. On failure both are cut back to their last good length."""
         try:
-            for handle, data in files:
+            for handle, data in ((self.output, output_bytes), (self.review, review_bytes)):
                 if data:
                     handle.append(data)
-            for handle, data in files:
-                if data:
+        except OSError:
+            self._cut_back()
+            raise
+
+    def sync(self, output_size: int, review_size: int) -> None:
+        """fsync what `append` wrote (``output_size`` and ``review_size`` bytes), then count it as
+        good. On failure both are cut back to their last good length, so the batch is written again."""
+        files = ((self.output, output_size), (self.review, review_size))
+        try:
+            for handle, size in files:
+                if size:
                     handle.sync()
         except OSError:
-            for handle, _ in files:
-                try:
-                    handle.cut_back()
-                except OSError:
-                    pass  # still dirty: cut again before the next attempt
+            self._cut_back()
             raise
-        for handle, data in files:
-            handle.commit(handle.length + len(data))
+        for handle, size in files:
+            handle.commit(handle.length + size)
+
+    def _cut_back(self) -> None:
+        for handle in (self.output, self.review):
+            try:
+                handle.cut_back()
+            except OSError:
+                pass  # still dirty: cut again before the next attempt
 
     def close(self) -> None:
         self.output.close()
@@ -222,6 +245,31 @@ class _Pending:
         return len(self.lines)
 
 
+@dataclass(slots=True)
+class _Written:
+    """A batch appended to the outputs, with what its checkpoint will record: the follower positions
+    right after its lines and the model that tagged it. ``future`` is its fsync and checkpoint while
+    they run beside the tagging of the next batch."""
+
+    pending: _Pending
+    output_bytes: bytes
+    review_bytes: bytes
+    n_review: int
+    files: dict
+    model_id: str
+    future: Future | None = None
+    durable_at: float = 0.0
+
+
+class _DurabilityFault(Exception):
+    """An fsync ("write") or checkpoint ("checkpoint") of a batch failed in the background."""
+
+    def __init__(self, stage: str, error: OSError) -> None:
+        super().__init__(stage)
+        self.stage = stage
+        self.error = error
+
+
 class Daemon:
     """The watch loop. ``run()`` returns the exit code; ``request_stop``/``request_reload`` are
     what the signal handlers call (and what in-process tests call)."""
@@ -249,6 +297,8 @@ class Daemon:
         self.model_path = str(config.model_path) if config.model_path else str(default_model_path())
         self.checkpoints = 0  # number of checkpoints saved (tests and stats)
         self.saved_files: dict | None = None  # follower snapshot in the last saved checkpoint
+        self.in_flight: _Written | None = None  # the batch whose fsync and checkpoint are running
+        self._syncer: ThreadPoolExecutor | None = None
 
     # signal-safe: only set flags
     def request_stop(self, *_: Any) -> None:
@@ -307,9 +357,11 @@ class Daemon:
         )
         previous_gc_thresholds = gc.get_threshold()
         gc.set_threshold(GC_YOUNG_THRESHOLD, *previous_gc_thresholds[1:])
+        self._syncer = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamtag-sync")
         try:
             return self._loop()
         finally:
+            self._syncer.shutdown(wait=True)  # never close the files under a running fsync
             gc.set_threshold(*previous_gc_thresholds)
             if watcher is not None:
                 watcher.stop()
@@ -374,6 +426,8 @@ class Daemon:
                 return self._finish(pending)
             self._housekeeping()
             if not lines:  # the last read found nothing: wait for a change (or the batch deadline)
+                if self._settle():
+                    return 1
                 deadline = pending.started + max_wait if len(pending) else self.last_poll + config.poll_interval_seconds
                 hinted = self._wait_for_hint(deadline - self.clock())
                 if hinted or len(pending) or self.clock() - self.last_poll >= config.poll_interval_seconds:
@@ -381,7 +435,7 @@ class Daemon:
                     self.last_poll = self.clock()
             lines = self._read_into(pending)
             if len(pending) and (len(pending) >= config.batch_max_lines or self.clock() - pending.started >= max_wait):
-                exit_code = self._write_with_retry(pending)
+                exit_code = self._write_with_retry(pending, overlap=True)
                 if exit_code:
                     return exit_code
                 pending = _Pending()
@@ -413,10 +467,12 @@ class Daemon:
 
     def _finish(self, pending: _Pending) -> int:
         """Stop requested: write the batch in hand, checkpoint, last stats line."""
-        if len(pending):
-            exit_code = self._write_with_retry(pending)
-        else:
-            exit_code = 0 if self._save_checkpoint_with_retry() else 1
+        exit_code = self._settle()
+        if exit_code == 0:
+            if len(pending):
+                exit_code = self._write_with_retry(pending, overlap=False)
+            else:
+                exit_code = 0 if self._save_checkpoint_with_retry() else 1
         if exit_code == 0:
             self._emit_stats(final=True)
             self.log("stopped: every line read is written and checkpointed")
@@ -444,42 +500,112 @@ class Daemon:
 
     def _checkpoint_if_moved(self) -> None:
         """Idle: save positions that moved without lines (new file at its end, rotation, truncation)."""
-        if self.follower.snapshot() != self.saved_files:
+        if self.in_flight is None and self.follower.snapshot() != self.saved_files:
             self._save_checkpoint_with_retry()
 
     # -- one batch ------------------------------------------------------------------------------
 
-    def _write_with_retry(self, pending: _Pending) -> int:
-        """Tag, write (retrying until it lands), checkpoint. 0, or 1 when stopped during a fault."""
+    def _write_with_retry(self, pending: _Pending, overlap: bool) -> int:
+        """Tag, write (retrying until it lands), fsync and checkpoint a batch. 0, or 1 when stopped
+        during a fault.
+
+        With ``overlap`` the fsyncs and the checkpoint run in the background while the loop reads
+        and tags the next batch (`_settle` waits for them before anything else is written). fsync
+        waits for the disk, not the processor: on a disk where the four fsyncs of a batch (output,
+        review, state file, its folder) took about 15 ms, they cost a fifth of the throughput when
+        the loop waited for them. The order on disk is unchanged: records, then their checkpoint,
+        and nothing of the next batch is written before that checkpoint has landed or failed.
+        """
         record_bytes, review_bytes, n_review = self._encode_batch(pending.lines)
-        delay = BACKOFF_FIRST_SECONDS
-        while True:
-            try:
-                self.writer.write(record_bytes, review_bytes)
-                break
-            except OSError as exc:
-                self.stats.write_failures += 1
-                if self.stop_requested:
-                    self.log(f"stopping during a write fault ({_reason(exc)}): {len(pending)} lines not written; "
-                             "they are read again at the next start")
-                    return 1
-                self.log(f"write failed ({_reason(exc)}); holding {len(pending)} lines, retrying in {delay:g} s")
-                self._sleep(delay)
-                delay = min(delay * 2, BACKOFF_CAP_SECONDS)
-        written_at = self.clock()
-        self.stats.latency.add(written_at - np.asarray(pending.read_at), np.asarray(pending.read_counts))
-        self.stats.lines += len(pending)
-        self.stats.review += n_review
-        self.stats.batches += 1
-        if not self._save_checkpoint_with_retry():
+        batch = _Written(pending, record_bytes, review_bytes, n_review, self.follower.snapshot(),
+                         self.tagger.model_id)
+        exit_code = self._settle()
+        if exit_code:
+            return exit_code
+        if not overlap:
+            if not self._retry_write(batch, lambda: self.writer.write(record_bytes, review_bytes)):
+                return 1
+            return self._checkpoint_written(batch)
+        if not self._retry_write(batch, lambda: self.writer.append(record_bytes, review_bytes)):
             return 1
+        batch.future = self._syncer.submit(self._make_durable, batch)
+        self.in_flight = batch
         return 0
 
-    def _save_checkpoint_with_retry(self) -> bool:
+    def _make_durable(self, batch: _Written) -> None:
+        """In the background: fsync the batch's records, then save its checkpoint."""
+        try:
+            self.writer.sync(len(batch.output_bytes), len(batch.review_bytes))
+        except OSError as exc:
+            raise _DurabilityFault("write", exc) from None
+        batch.durable_at = self.clock()
+        try:
+            self._checkpoint(batch.files, batch.model_id)
+        except OSError as exc:
+            raise _DurabilityFault("checkpoint", exc) from None
+
+    def _settle(self) -> int:
+        """Wait for the batch whose fsync and checkpoint run in the background; redo in the
+        foreground, with the usual retries, whatever failed there. 0, or 1 when stopped meanwhile."""
+        batch, self.in_flight = self.in_flight, None
+        if batch is None:
+            return 0
+        try:
+            batch.future.result()
+        except _DurabilityFault as fault:
+            if fault.stage == "write":  # the writer cut the batch back: write it again, whole
+                self._log_write_fault(batch, fault.error, BACKOFF_FIRST_SECONDS)
+                self._sleep(BACKOFF_FIRST_SECONDS)
+                write_again = lambda: self.writer.write(batch.output_bytes, batch.review_bytes)  # noqa: E731
+                if not self._retry_write(batch, write_again):
+                    return 1
+                return self._checkpoint_written(batch)
+            self.log(f"checkpoint failed ({_reason(fault.error)}); retrying in {BACKOFF_FIRST_SECONDS:g} s")
+            self._sleep(BACKOFF_FIRST_SECONDS)
+            return self._checkpoint_written(batch)
+        self._count_written(batch)
+        return 0
+
+    def _retry_write(self, batch: _Written, write: Callable[[], None]) -> bool:
+        """Run ``write`` until it lands, backing off; False if a stop is requested during a fault."""
         delay = BACKOFF_FIRST_SECONDS
         while True:
             try:
-                self._checkpoint()
+                write()
+                batch.durable_at = self.clock()
+                return True
+            except OSError as exc:
+                if self.stop_requested:
+                    self.log(f"stopping during a write fault ({_reason(exc)}): {len(batch.pending)} lines not "
+                             "written; they are read again at the next start")
+                    return False
+                self._log_write_fault(batch, exc, delay)
+                self._sleep(delay)
+                delay = min(delay * 2, BACKOFF_CAP_SECONDS)
+
+    def _log_write_fault(self, batch: _Written, exc: OSError, delay: float) -> None:
+        self.stats.write_failures += 1
+        self.log(f"write failed ({_reason(exc)}); holding {len(batch.pending)} lines, retrying in {delay:g} s")
+
+    def _checkpoint_written(self, batch: _Written) -> int:
+        """Checkpoint a batch whose records are synced (retrying), then count it. 0, or 1 when stopped."""
+        if not self._save_checkpoint_with_retry(batch.files, batch.model_id):
+            return 1
+        self._count_written(batch)
+        return 0
+
+    def _count_written(self, batch: _Written) -> None:
+        pending = batch.pending
+        self.stats.latency.add(batch.durable_at - np.asarray(pending.read_at), np.asarray(pending.read_counts))
+        self.stats.lines += len(pending)
+        self.stats.review += batch.n_review
+        self.stats.batches += 1
+
+    def _save_checkpoint_with_retry(self, files: dict | None = None, model_id: str | None = None) -> bool:
+        delay = BACKOFF_FIRST_SECONDS
+        while True:
+            try:
+                self._checkpoint(files, model_id)
                 return True
             except OSError as exc:
                 if self.stop_requested:
@@ -491,13 +617,14 @@ class Daemon:
                 self._sleep(delay)
                 delay = min(delay * 2, BACKOFF_CAP_SECONDS)
 
-    def _checkpoint(self) -> None:
-        files = self.follower.snapshot()
+    def _checkpoint(self, files: dict | None = None, model_id: str | None = None) -> None:
+        """Save the state: ``files`` (a follower snapshot; now if None) and the outputs' synced lengths."""
+        files = self.follower.snapshot() if files is None else files
         state = State(
             files=files,
             output_bytes=self.writer.output.length,
             review_bytes=self.writer.review.length,
-            model_id=self.tagger.model_id,
+            model_id=model_id or self.tagger.model_id,
         )
         save_state(self.state_path, state, mode=self.config.file_mode)
         self.saved_files = files

@@ -214,12 +214,12 @@ def count_lines(path: Path) -> int:
 class InProcessDaemon:
     """The daemon loop on a thread of the test process (no signal handlers), for fault injection.
 
-    ``write`` replaces ``os.write`` for the output and review files.
+    ``write`` and ``fsync`` replace ``os.write`` and ``os.fsync`` for the output and review files.
     """
 
     started: list["InProcessDaemon"] = []
 
-    def __init__(self, config_path: Path, write=os.write, overrides: dict | None = None) -> None:
+    def __init__(self, config_path: Path, write=os.write, overrides: dict | None = None, fsync=os.fsync) -> None:
         import threading
 
         from streamtag.config import load_watch_config
@@ -227,7 +227,7 @@ class InProcessDaemon:
 
         self.logs: list[str] = []
         self.config = load_watch_config(config_path, overrides or {})
-        self.daemon = Daemon(self.config, log=self.logs.append, write=write, install_signals=False)
+        self.daemon = Daemon(self.config, log=self.logs.append, write=write, fsync=fsync, install_signals=False)
         self.exit_code: int | None = None
         self.thread = threading.Thread(target=self._run, name="daemon-under-test", daemon=True)
 

@@ -4,7 +4,8 @@ External references named beside the checks:
 - "exactly once" is common practice: at-least-once delivery + idempotent checkpoint = effectively
   once (the outputs are cut back to the checkpoint, the inputs resume at the checkpoint).
 - POSIX signal(7) semantics: SIGKILL cannot be caught; SIGTERM/SIGINT/SIGHUP can.
-- errno ENOSPC ("No space left on device") from write(2).
+- errno ENOSPC ("No space left on device") from write(2); EIO from fsync(2) (the data may not be
+  on disk, so it must be written again).
 - Unicode Standard, chapter 3 (U+FFFD substitution of maximal subparts, Table 3-8).
 - ECMA-48, section 5.4: control sequences (CSI ... final byte).
 - RFC 8259 (JSON): section 7, control characters in strings are escaped; a JSON text is an object
@@ -395,6 +396,39 @@ def test_enospc_holds_the_batch_and_the_checkpoint(tmp_path, model_paths):
     wait_until(lambda: count_lines(output) >= 500, what="records after the fault")
     assert daemon.stop() == 0
     assert [line_id(r) for r in read_records(output)] == list(range(500))  # no loss, no duplicate
+    assert load_state(state_path).output_bytes == output.stat().st_size
+
+
+def test_fsync_fault_in_the_background_writes_the_batch_again(tmp_path, model_paths):
+    # The fsyncs of a batch run beside the tagging of the next one; a failed fsync must still cut
+    # the batch back, hold the checkpoint and write the batch again, whole, before anything newer.
+    source = tmp_path / "app.log"
+    append_lines(source, numbered("F", 0, 200))
+    config = write_config(tmp_path, [str(source)], model_paths[0][0])
+    disk_failing = threading.Event()
+
+    def fsync(fd):
+        if disk_failing.is_set():
+            raise OSError(errno.EIO, os.strerror(errno.EIO))  # fsync(2): EIO
+        return os.fsync(fd)
+
+    daemon = InProcessDaemon(config, fsync=fsync).start()
+    output = tmp_path / "out" / "tagged.jsonl"
+    state_path = str(tmp_path / "state" / "state.json")
+    wait_until(lambda: count_lines(output) >= 200, what="first records")
+    wait_until(lambda: load_state(state_path).output_bytes == output.stat().st_size, what="first checkpoint")
+    disk_failing.set()
+    append_lines(source, numbered("F", 200, 100))
+    wait_until(lambda: daemon.log_text().count("write failed (EIO") >= 2, what="retries")
+    held = load_state(state_path)
+    assert output.stat().st_size == held.output_bytes  # the unsynced batch was cut back
+    append_lines(source, numbered("F", 300, 100))  # lines keep coming during the fault
+    time.sleep(0.5)
+    assert load_state(state_path).files == held.files  # the checkpoint did not advance
+    disk_failing.clear()
+    wait_until(lambda: count_lines(output) >= 400, what="records after the fault")
+    assert daemon.stop() == 0
+    assert [line_id(r) for r in read_records(output)] == list(range(400))  # no loss, no duplicate
     assert load_state(state_path).output_bytes == output.stat().st_size
 
 
