@@ -152,7 +152,7 @@ def run_evaluate(args: argparse.Namespace) -> int:
 # -- tag ----------------------------------------------------------------------------------------
 
 def run_tag(args: argparse.Namespace) -> int:
-    from streamtag.batch import encode_batch, tag_decoded
+    from streamtag.batch import encode_batch, fewer_collections, tag_decoded
     from streamtag.tagger import Tagger
 
     if not 0.0 <= args.threshold <= 1.0:
@@ -161,15 +161,16 @@ def run_tag(args: argparse.Namespace) -> int:
         raise ConfigError("--batch must be >= 1")
     tagger = Tagger(load_model(args.model), max_tokens=args.max_tokens)
     out = sys.stdout.buffer
-    for batch in _batches(_input_lines(args.files), args.batch):
-        decoded = [line for _, _, _, line in batch]
-        tagged = tag_decoded(tagger, decoded, None)
-        output, _, _ = encode_batch(decoded, tagged, tagger.model_id, args.threshold,
-                                    sources=[b[0] for b in batch], offsets=[b[1] for b in batch],
-                                    line_numbers=[b[2] for b in batch], read_flags=[()] * len(batch),
-                                    want_review=False)
-        out.write(output)
-        out.flush()
+    with fewer_collections():
+        for batch in _batches(_input_lines(args.files), args.batch):
+            decoded = [line for _, _, _, line in batch]
+            tagged = tag_decoded(tagger, decoded, None)
+            output, _, _ = encode_batch(decoded, tagged, tagger.model_id, args.threshold,
+                                        sources=[b[0] for b in batch], offsets=[b[1] for b in batch],
+                                        line_numbers=[b[2] for b in batch], read_flags=[()] * len(batch),
+                                        want_review=False)
+            out.write(output)
+            out.flush()
     return 0
 
 

@@ -25,7 +25,6 @@ from __future__ import annotations
 
 import argparse
 import errno
-import gc
 import os
 import queue
 import signal
@@ -39,7 +38,7 @@ from typing import Any, Callable
 import numpy as np
 import orjson
 
-from streamtag.batch import encode_batch, tag_decoded
+from streamtag.batch import encode_batch, fewer_collections, tag_decoded
 from streamtag.checkpoint import State, fsync_directory, load_state, recover_outputs, save_state, write_file_atomically
 from streamtag.config import WatchConfig, load_watch_config
 from streamtag.decode import decode_json, decode_lines
@@ -55,13 +54,6 @@ BACKOFF_CAP_SECONDS = 5.0
 MODEL_CHECK_SECONDS = 1.0
 HINT_QUEUE_SIZE = 64  # one pending hint is enough to wake the loop; the watcher drops the rest
 WAIT_SLICE_SECONDS = 0.1  # longest sleep between looks at the signal flags
-# The cycle collector runs when the tracked objects allocated minus those freed pass this number.
-# A batch keeps a few objects per line alive at once (records, spans, tagger work), so at Python's
-# default of 700 every batch set off several collections, each rescanning the batch and promoting
-# it, plus full collections over the model and caches: measured ~2 us per line, a sixth of the
-# daemon's cost outside tagging. Batch garbage is freed by reference counting; this threshold only
-# bounds how much cyclic garbage (rare here) waits for the collector.
-GC_YOUNG_THRESHOLD = 50_000
 # Tagging a sample proves a new model's labels and feature spec work before it is swapped in.
 MODEL_PROBE_LINE = "gatewarden[311]: login failed for user kestrel from 10.4.7.21 port 2201 on host relay-07"
 
@@ -355,14 +347,12 @@ class Daemon:
             f"output {config.output_path}; review {config.review_path} below {config.review_threshold:g}"
             + ("; resumed from checkpoint" if state is not None else "")
         )
-        previous_gc_thresholds = gc.get_threshold()
-        gc.set_threshold(GC_YOUNG_THRESHOLD, *previous_gc_thresholds[1:])
         self._syncer = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamtag-sync")
         try:
-            return self._loop()
+            with fewer_collections():
+                return self._loop()
         finally:
             self._syncer.shutdown(wait=True)  # never close the files under a running fsync
-            gc.set_threshold(*previous_gc_thresholds)
             if watcher is not None:
                 watcher.stop()
             self.follower.close()

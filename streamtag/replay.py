@@ -318,12 +318,17 @@ _worker: dict = {}  # per process: the Tagger and the settings, set by _init_wor
 
 def _init_worker(settings: TagSettings, ignore_interrupt: bool) -> None:
     """Pool initializer: load the model once per worker process."""
+    import gc
+
+    from streamtag.batch import GC_YOUNG_THRESHOLD
     from streamtag.model import load_model
     from streamtag.tagger import Tagger
 
     if ignore_interrupt:
-        # Ctrl-C goes to the whole process group; the parent alone decides how to stop.
+        # A pool worker: Ctrl-C goes to the whole process group; the parent alone decides how to
+        # stop. The worker only tags, so it keeps the tagging loop's collector threshold for good.
         signal.signal(signal.SIGINT, signal.SIG_IGN)
+        gc.set_threshold(GC_YOUNG_THRESHOLD, *gc.get_threshold()[1:])
     _worker["tagger"] = Tagger(load_model(settings.model_path), max_tokens=settings.max_tokens,
                                window_overlap=settings.window_overlap)
     _worker["settings"] = settings
@@ -621,9 +626,12 @@ def _replay(reader: ArchiveReader, settings: TagSettings, workers: int, output: 
 def _tagged_chunks(chunks: Iterator[Chunk], settings: TagSettings, workers: int):
     """(chunk, tagging result) in input order; in this process for one worker, else in a pool."""
     if workers == 1:
+        from streamtag.batch import fewer_collections
+
         _init_worker(settings, ignore_interrupt=False)
-        for chunk in chunks:
-            yield chunk, _tag_chunk(chunk)
+        with fewer_collections():
+            for chunk in chunks:
+                yield chunk, _tag_chunk(chunk)
         return
     context = multiprocessing.get_context("fork" if "fork" in multiprocessing.get_all_start_methods() else None)
     pool = futures.ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker,

@@ -13,11 +13,13 @@ External references named beside the checks:
 
 from __future__ import annotations
 
+import gc
+
 import pytest
 
 from daemon_support import build_tiny_model
 from streamtag import records
-from streamtag.batch import encode_batch, tag_decoded
+from streamtag.batch import GC_YOUNG_THRESHOLD, encode_batch, fewer_collections, tag_decoded
 from streamtag.decode import DecodedLine, decode_json, decode_lines, decode_text
 from streamtag.model import load_model
 from streamtag.tagger import TaggedLine, Tagger
@@ -132,3 +134,13 @@ def test_a_failing_batch_is_tagged_line_by_line(tagger):
     assert len(logged) == 1 and "one by one" in logged[0]
     assert results[0].flags == ["tag_error"] and results[0].text == PLAIN[0].decode()
     assert all(result.flags != ["tag_error"] for result in results[1:])
+
+
+def test_fewer_collections_raises_the_young_threshold_and_restores_it():
+    # Python's gc module documents get_threshold/set_threshold as (gen0, gen1, gen2) counts.
+    before = gc.get_threshold()
+    with pytest.raises(RuntimeError):
+        with fewer_collections():
+            assert gc.get_threshold() == (GC_YOUNG_THRESHOLD, *before[1:])
+            raise RuntimeError("a failing batch")
+    assert gc.get_threshold() == before
