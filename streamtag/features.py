@@ -862,70 +862,203 @@ def _block_sums(weights: np.ndarray, n_slots: int, pair_lists: list[Pairs]) -> n
     return np.asarray(selector @ weights).reshape(len(pair_lists), n_slots, weights.shape[1])
 
 
-class _BlockCache:
-    """key -> (K, L) block of summed weights, computed on first use from the key's (slot, id) pairs.
+def _packed_affixes(codes: np.ndarray, anchors: np.ndarray, step: int, width: int, bits: int) -> np.ndarray:
+    """(M, width) uint64: column n-1 packs the n code points read from each anchor in direction step
+    (+1: a prefix from its first character, -1: a suffix read backwards from its last), ``bits`` bits
+    each, the first one lowest. Entries past a token's end hold neighbours' code points (masked later).
 
-    Bounded: it starts afresh when full (keys repeat, so it refills with what is in use)."""
+    codes (C,) code points of the batch; anchors (M,) int64 positions in codes.
+    """
+    if width == 0 or codes.size == 0:
+        return np.zeros((anchors.size, width), dtype=np.uint64)
+    positions = np.clip(anchors[:, None] + step * np.arange(width), 0, codes.size - 1)
+    chars = codes[positions].astype(np.uint64)
+    chars <<= (bits * np.arange(width)).astype(np.uint64)
+    return np.cumsum(chars, axis=1, dtype=np.uint64)
 
-    def __init__(self, weights: np.ndarray, n_slots: int, pairs_of: Callable[[object], Pairs], limit: int):
-        self.weights, self.n_slots, self.pairs_of, self.limit = weights, n_slots, pairs_of, max(1, limit)
-        self.reset()
 
-    def reset(self) -> None:
-        self.row_of: dict = {}
-        if not hasattr(self, "blocks"):   # kept across resets, like the scorer's table
-            self.blocks = np.zeros((64, self.n_slots, self.weights.shape[1]))
+def _pack(value: str, bits: int) -> int:
+    """The integer `_packed_affixes` makes of these code points, in this order, ``bits`` bits each."""
+    return sum(ord(char) << (bits * i) for i, char in enumerate(value))
 
-    def gather(self, keys: list) -> np.ndarray:
-        """(M, K, L) blocks of ``keys`` (a new array)."""
-        rows = np.fromiter(map(self.row_of.get, keys, repeat(-1)), dtype=np.int64, count=len(keys))
-        missing = np.flatnonzero(rows < 0).tolist()
-        if missing:
-            if len(self.row_of) + len(missing) > self.limit:
-                self.reset()
-                missing = list(range(len(keys)))
-            new_keys = list(dict.fromkeys([keys[n] for n in missing]))
-            first = len(self.row_of)
-            needed = first + len(new_keys)
-            if needed > self.blocks.shape[0]:
-                grown = np.zeros((2 * needed,) + self.blocks.shape[1:])
-                grown[:first] = self.blocks[:first]
-                self.blocks = grown
-            self.blocks[first:needed] = _block_sums(self.weights, self.n_slots, list(map(self.pairs_of, new_keys)))
-            self.row_of.update(zip(new_keys, range(first, needed)))
-            rows[missing] = list(map(self.row_of.__getitem__, [keys[n] for n in missing]))
-        return self.blocks[rows]
+
+class _AffixTables:
+    """Known prefix and suffix values -> store rows, searched for all of a batch's types at once.
+
+    Each table is one affix length; its values are packed into integers (`_packed_affixes`, one per
+    code point width in use), tagged with the table number in the top bits, and kept sorted in one
+    array, so a batch's lookups are one searchsorted. Tables whose values would not fit the integer
+    (long affixes of wide code points) fall back to one dict lookup per type.
+    """
+
+    def __init__(self, tables: list[tuple[int, bool, dict[str, int]]]):
+        # A value of another length never fires (the extractor makes "p3=" only from 3 characters).
+        self.tables = [(length, is_prefix, {value: row for value, row in rows.items() if len(value) == length})
+                       for length, is_prefix, rows in tables]
+        self.lengths = np.array([length for length, _, _ in self.tables], dtype=np.int64)     # (A,)
+        self.is_prefix = np.array([is_prefix for _, is_prefix, _ in self.tables], dtype=np.bool_)
+        self.tag_shift = 64 - max(len(self.tables), 1).bit_length()
+        self._sorted: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+        self._hashed: dict[int, tuple[np.ndarray, np.ndarray, int]] = {}
+
+    def packable(self, bits: int) -> int:
+        """Longest affix whose code points of ``bits`` bits fit below the table tag."""
+        return self.tag_shift // bits
+
+    def sorted_keys(self, bits: int) -> tuple[np.ndarray, np.ndarray]:
+        """(keys (V,) uint64 sorted, store rows (V,) int64) of all packable values of ``bits`` bits."""
+        found = self._sorted.get(bits)
+        if found is None:
+            keys, rows = [], []
+            for number, (length, is_prefix, values) in enumerate(self.tables):
+                if length > self.packable(bits):
+                    continue
+                for value, row in values.items():
+                    if max(map(ord, value)) < (1 << bits):
+                        keys.append(_pack(value if is_prefix else value[::-1], bits) | (number << self.tag_shift))
+                        rows.append(row)
+            keys_array = np.array(keys, dtype=np.uint64).reshape(-1)
+            order = np.argsort(keys_array, kind="stable")
+            found = self._sorted[bits] = (keys_array[order], np.array(rows, dtype=np.int64).reshape(-1)[order])
+        return found
+
+    def hashed(self, bits: int) -> tuple[np.ndarray, np.ndarray, int]:
+        """The packable values of ``bits`` bits as an open-addressing table for the compiled lookup:
+        (keys (H,) uint64, store rows (H,), log2 H), H at least twice the values."""
+        found = self._hashed.get(bits)
+        if found is None:
+            from streamtag.feature_kernels import EMPTY_KEY, hash_slot
+
+            keys, rows = self.sorted_keys(bits)
+            hash_bits = max(2 * keys.size, 2).bit_length()
+            table_keys = np.full(1 << hash_bits, EMPTY_KEY, dtype=np.uint64)
+            table_rows = np.zeros(1 << hash_bits, dtype=np.int64)
+            for key, row in zip(keys.tolist(), rows.tolist()):
+                slot = hash_slot(key, hash_bits)
+                while table_keys[slot] != EMPTY_KEY:
+                    slot = (slot + 1) & ((1 << hash_bits) - 1)
+                table_keys[slot], table_rows[slot] = key, row
+            found = self._hashed[bits] = (table_keys, table_rows, hash_bits)
+        return found
+
+    def rows(self, lowers: list[str], codes: np.ndarray, bits: int, lengths: np.ndarray) -> np.ndarray:
+        """(M, A) store row of each type's value in each table (0: unknown, or the type is too short).
+
+        lowers (M,) lower forms; codes: their code points joined by one separator each; lengths (M,).
+        """
+        starts = np.cumsum(lengths + 1) - lengths - 1
+        kernels = _feature_kernels()
+        if kernels is not None:
+            rows = np.empty((len(lowers), len(self.tables)), dtype=np.int64)
+            kernels[1](codes, starts, lengths, self.lengths, self.is_prefix, bits, self.tag_shift,
+                       *self.hashed(bits), rows)
+        else:
+            rows = self.rows_numpy(codes, bits, lengths, starts)
+        packable = self.packable(bits)
+        for number, (length, is_prefix, values) in enumerate(self.tables):
+            if length > packable:   # rare: wide code points, long affix: one dict lookup per type
+                cut = slice(length) if is_prefix else slice(-length, None)
+                found = np.fromiter(map(values.get, map(itemgetter(cut), lowers), repeat(0)), dtype=np.int64,
+                                    count=len(lowers))
+                rows[:, number] = np.where(lengths >= length, found, 0)
+        return rows
+
+    def rows_numpy(self, codes: np.ndarray, bits: int, lengths: np.ndarray, starts: np.ndarray) -> np.ndarray:
+        """`rows` of the packable tables in numpy (0 for the others): the compiled lookup's reference."""
+        n_types = lengths.size
+        packable = self.packable(bits)
+        widths = {is_prefix: min(packable, max((length for length, prefix, _ in self.tables if prefix == is_prefix),
+                                               default=0)) for is_prefix in (True, False)}
+        packed = {True: _packed_affixes(codes, starts, 1, widths[True], bits),
+                  False: _packed_affixes(codes, starts + lengths - 1, -1, widths[False], bits)}
+        query = np.zeros((n_types, len(self.tables)), dtype=np.uint64)                   # (M, A)
+        for number, (length, is_prefix, _) in enumerate(self.tables):
+            if length <= packable:
+                query[:, number] = packed[is_prefix][:, length - 1] | np.uint64(number << self.tag_shift)
+        keys, key_rows = self.sorted_keys(bits)
+        if keys.size:
+            at = np.minimum(np.searchsorted(keys, query), keys.size - 1)
+            rows = np.where(keys[at] == query, key_rows[at], 0)
+        else:
+            rows = np.zeros(query.shape, dtype=np.int64)
+        rows[(lengths[:, None] < self.lengths) | (self.lengths > packable)] = 0
+        return rows
+
+
+def _feature_kernels():
+    """The compiled kernels of the new-type path, (sum_block_rows, affix_rows) of `feature_kernels`,
+    or None for the numpy code (numba missing or broken, or kernels switched off with
+    `crf.USE_KERNELS`, which switches off all compiled kernels)."""
+    global _loaded_kernels
+    from streamtag import crf
+
+    if not crf.USE_KERNELS:
+        return None
+    if _loaded_kernels is None:
+        try:
+            from streamtag import feature_kernels
+        except (ImportError, OSError):   # numba missing, or its compiler library fails to load
+            _loaded_kernels = False
+        else:
+            _loaded_kernels = feature_kernels.load()
+    return _loaded_kernels or None
+
+
+_loaded_kernels = None
+# Marks a non-ASCII type's shape key: its shape block lacks the case flags an ASCII shape's block holds,
+# and no ASCII shape contains this character, so the two kinds of keys never meet.
+_NON_ASCII_MARK = "\uffff"
+# Joins a batch's texts so that translate, lower and encode run once for all of them.
+_JOIN = "\x00"
+# bytes.translate table of the word shape of every ASCII character (the rest map to themselves).
+_ASCII_SHAPES = bytes(ord(word_shape(chr(code))) if code < 128 else code for code in range(256))
 
 
 class _TypeScorer:
-    """(K, L) score blocks of many new (text, kind) types at once: per slot, the sum of W's rows over
-    the type's known feature ids, exactly the ids `_VocabularyEncoder.append_pairs` gives.
+    """(K, L) score blocks of many new types at once: per slot, the sum of W's rows over the type's
+    known feature ids, exactly the ids `_VocabularyEncoder.append_pairs` gives.
 
     New types arrive a few per log line (timestamps, ids, addresses), so this is a hot path of
-    decoding, and it is laid out to cost a handful of C-level lookups per type (``map`` over all of a
-    batch's new types) plus a numpy gather-add per part. A type's features come in four parts:
-    - its lower form and the word lists holding it: blocks made up front for every lower form that
-      has any (every known lower value, every listed word); any other form has none;
-    - its prefixes and suffixes: one lookup per length in blocks made up front for every known value;
-    - its shape with its kind, and for ASCII texts the case flags too (str.isupper, islower and
-      istitle of an ASCII text follow from its shape: X upper, x lower, the rest uncased): blocks
-      cached by (shape, kind). Non-ASCII texts test the case flags one by one (they are rare).
+    decoding. A type's block is the sum of a few blocks kept in one store (`blocks`, (R, K*L), row 0
+    zero), one per part of its features:
+    - its lower form and the word lists holding it: blocks made up front for every lower form that has
+      any (every known lower value, every listed word); any other form has none (a form longer than the
+      value cut has its cut value's block);
+    - each prefix and suffix: blocks made up front for every known value, found for all types of a
+      batch at once by searching their code points packed into integers (`_AffixTables`);
+    - its shape value: blocks made up front for every known one;
+    - the rest of its shape features with its kind (collapsed shape, kind, length, shape flags, and for
+      ASCII texts the case flags, which for ASCII follow from the shape: X upper, x lower, the rest
+      uncased): blocks cached by those values, found through a cache by (shape, kind). Non-ASCII texts
+      test the case flags one by one (they are rare).
+    Per batch that is a few C-level passes over the new types (join, translate, lower, split, a dict
+    lookup for the shape and one for the lower form), a fixed number of numpy calls, and one compiled
+    sum (`feature_kernels.sum_block_rows`; numpy adds in the same order without it).
     """
 
     def __init__(self, encoder: _VocabularyEncoder, weights: np.ndarray, n_slots: int, limit: int):
         spec, index, use = encoder.spec, encoder.index, encoder.use
+        self.spec, self.use = spec, use
+        self.weights, self.n_slots = weights, n_slots
+        self.width = n_slots * weights.shape[1]
         self.cut = spec.max_value_chars
         self.use_lower = use["lower"]
+        self.limit = max(1, limit)
+        self.shape_flags = encoder.shape_flags
+        self.known = lambda names: tuple(chain.from_iterable(filter(None, map(index.get, names))))
+        known = self.known
 
-        def known(names) -> Pairs:
-            return tuple(chain.from_iterable(filter(None, map(index.get, names))))
+        pair_lists: list[Pairs] = []
 
-        def block_table(keys: list, pairs_of) -> tuple[dict, np.ndarray]:
-            """Blocks of the keys that have any known pair: (key -> row, blocks with row 0 zero)."""
-            pair_lists = list(map(pairs_of, keys))
-            keys = [key for key, pairs in zip(keys, pair_lists) if pairs]
-            blocks = _block_sums(weights, n_slots, [pairs for pairs in pair_lists if pairs])
-            return dict(zip(keys, range(1, len(keys) + 1))), np.concatenate([np.zeros((1,) + blocks.shape[1:]), blocks])
+        def fixed_rows(keys, pairs_of) -> dict:
+            """key -> store row of the keys that have any known pair (the others have none)."""
+            rows = {}
+            for key in keys:
+                pairs = pairs_of(key)
+                if pairs:
+                    pair_lists.append(pairs)
+                    rows[key] = len(pair_lists)
+            return rows
 
         wordlists = spec.wordlists if use["wordlists"] else ()
         lower_label = "lower=" if self.use_lower else None
@@ -934,75 +1067,263 @@ class _TypeScorer:
             names = [lower_label + lower[: self.cut]] if lower_label else []
             return known(names + ["list=" + name for name, words in wordlists if lower in words])
 
+        def values(label: str) -> list[str]:
+            return sorted(name[len(label):] for name in index if name.startswith(label))
+
         listed = set().union(*(words for _, words in wordlists))
-        known_lowers = {name[len("lower="):] for name in index if name.startswith("lower=")}
-        self.word_rows, self.word_blocks = block_table(sorted(known_lowers | listed), word_pairs)
+        known_lowers = set(values("lower="))
+        self.word_rows = fixed_rows(sorted(known_lowers | listed), word_pairs)
         # A lower form longer than the cut that is in no list has only its cut value's block.
-        self.cut_rows, self.cut_blocks = block_table(sorted(known_lowers), lambda value: known(["lower=" + value]))
+        self.cut_rows = fixed_rows(sorted(known_lowers), lambda value: known(["lower=" + value]))
+        self.shape_value_rows = fixed_rows(values("shape=") if use["shape"] else [],
+                                           lambda value: index["shape=" + value])
+        self.collapsed_value_rows = fixed_rows(values("cshape=") if use["collapsed_shape"] else [],
+                                               lambda value: index["cshape=" + value])
+        tables = []
+        for lengths, labels, is_prefix in ((spec.prefix_lengths, encoder.prefix_labels, True),
+                                           (spec.suffix_lengths, encoder.suffix_labels, False)):
+            for length, label in zip(lengths, labels):
+                rows = fixed_rows(values(label), lambda value: index[label + value])
+                if rows:
+                    tables.append((length, is_prefix, rows))
+        self.affixes = _AffixTables(tables) if tables else None
 
-        # Prefixes and suffixes: one lookup per length in a table of every known value. A value shorter
-        # than its length ("p3=ab") is never in the vocabulary (such features are only made from long
-        # enough tokens), so a short token's slice simply finds nothing.
-        affixes = [(slice(n), label) for n, label in zip(spec.prefix_lengths, encoder.prefix_labels)]
-        affixes += [(slice(-n, None), label) for n, label in zip(spec.suffix_lengths, encoder.suffix_labels)]
-        affix_names = sorted(name for name in index if any(name.startswith(label) for _, label in affixes))
-        affix_rows, self.affix_blocks = block_table(affix_names, lambda name: index[name])
-        self.affix_flat = self.affix_blocks.reshape(self.affix_blocks.shape[0], -1)   # (values, K*L)
-        self.affix_lookups = [(cut, {name[len(label):]: row for name, row in affix_rows.items()
-                                     if name.startswith(label)}) for cut, label in affixes]
-        self.affix_lookups = [(cut, rows) for cut, rows in self.affix_lookups if rows]
+        self.text_flags = [(name, holds) for name, holds in encoder.text_flags if "flag=" + name in index]
+        flag_rows = fixed_rows([name for name, _ in self.text_flags], lambda name: index["flag=" + name])
+        self.flag_rows = [(holds, flag_rows[name]) for name, holds in self.text_flags]
 
-        text_flags = [(name, holds) for name, holds in encoder.text_flags if "flag=" + name in index]
+        self.blocks = np.zeros((len(pair_lists) + 64, self.width))            # (R, K*L), row 0 zero
+        self.slot_masks = np.zeros(self.blocks.shape[0], dtype=np.int64)     # (R,) slots that may be non-zero
+        self.n_blocks = 1
+        self._store(pair_lists)
+        self.n_fixed = self.n_blocks
+        # Per shape id: its value rows and its signature; per (signature, kind): its block row (-1: not yet).
+        self.value_of = np.zeros(64, dtype=np.int64)
+        self.collapsed_of = np.zeros(64, dtype=np.int64)
+        self.signature_of = np.zeros(64, dtype=np.int64)
+        self.class_of = np.full((64, 4), -1, dtype=np.int64)
+        self._reset_shapes()
 
-        def ascii_shape_pairs(key: tuple[str, str]) -> Pairs:
-            stand_in = key[0].replace("d", "0")    # same case classes as any ASCII text of this shape
-            return encoder.shape_pairs(*key) + known(["flag=" + name for name, holds in text_flags
-                                                      if holds(stand_in)])
+    def _reset_shapes(self) -> None:
+        """Forget the cached shape blocks (bounded: they refill with the shapes in use)."""
+        self.shape_ids: dict[str, int] = {}           # shape (marked if non-ASCII) -> shape id
+        self.n_shapes = 0
+        self.signature_ids: dict[tuple, int] = {}
+        self.signature_shapes: list[tuple[str, bool]] = []   # signature id -> (a shape of it, ASCII?)
+        self.n_blocks = self.n_fixed
+        self.class_of[:] = -1
 
-        self.ascii_shapes = _BlockCache(weights, n_slots, ascii_shape_pairs, limit)
-        self.other_shapes = _BlockCache(weights, n_slots, lambda key: encoder.shape_pairs(*key), limit)
-        self.flag_blocks = [(holds, _block_sums(weights, n_slots, [index["flag=" + name]])[0])
-                            for name, holds in text_flags]
+    # -- a batch of new types --
 
-    def scores(self, keys: list[tuple[str, str]], out: np.ndarray) -> None:
-        """Write the (M, K, L) score blocks of the types ``keys`` into ``out``."""
-        texts = [text for text, _ in keys]
+    def scores(self, texts: list[str], kind_ids: np.ndarray, kind_names: list[str], out: np.ndarray) -> None:
+        """Write the (M, K, L) score blocks of the M types (texts[m], kind_names[kind_ids[m]]) into out."""
         n_types = len(texts)
-        shape_keys = list(zip(map(str.translate, texts, repeat(_SHAPE_TABLE)), [kind for _, kind in keys]))
-        is_ascii = np.fromiter(map(str.isascii, texts), dtype=bool, count=n_types)
-        if is_ascii.all():
-            out[:] = self.ascii_shapes.gather(shape_keys)
+        if n_types == 0:
+            return
+        if self.n_shapes + n_types > self.limit:
+            self._reset_shapes()
+        joined = _JOIN.join(texts)
+        if joined.isascii() and joined.count(_JOIN) == n_types - 1:
+            rows = self._ascii_rows(joined, kind_ids, kind_names)
         else:
-            ascii_types, other_types = np.flatnonzero(is_ascii).tolist(), np.flatnonzero(~is_ascii).tolist()
-            if ascii_types:
-                out[ascii_types] = self.ascii_shapes.gather([shape_keys[n] for n in ascii_types])
-            out[other_types] = self.other_shapes.gather([shape_keys[n] for n in other_types])
-            for n in other_types:
-                for holds, block in self.flag_blocks:
-                    if holds(texts[n]):
-                        out[n] += block
+            # ASCII texts without the separator still go the fast way; the others one by one.
+            fast = np.fromiter(map(str.isascii, texts), dtype=bool, count=n_types)
+            fast &= ~np.fromiter(map(str.__contains__, texts, repeat(_JOIN)), dtype=bool, count=n_types)
+            fast_types, slow_types = np.flatnonzero(fast), np.flatnonzero(~fast)
+            slow_rows = self._general_rows([texts[n] for n in slow_types.tolist()], kind_ids[slow_types],
+                                           kind_names)
+            if fast_types.size:
+                fast_rows = self._ascii_rows(_JOIN.join([texts[n] for n in fast_types.tolist()]),
+                                             kind_ids[fast_types], kind_names)
+                rows = np.zeros((n_types, max(fast_rows.shape[1], slow_rows.shape[1])), dtype=np.int64)
+                rows[fast_types, : fast_rows.shape[1]] = fast_rows
+            else:
+                rows = np.zeros((n_types, slow_rows.shape[1]), dtype=np.int64)
+            rows[slow_types, : slow_rows.shape[1]] = slow_rows
 
+        flat = out.reshape(n_types, self.width)
+        kernels = _feature_kernels()
+        if kernels is not None:
+            kernels[0](self.blocks, self.slot_masks, rows, self.weights.shape[1], flat)
+        else:
+            self._sum_numpy(rows, flat)
+
+    def _sum_numpy(self, rows: np.ndarray, flat: np.ndarray) -> None:
+        """The kernel's sums in numpy, in its order (so equal bit for bit): rows (M, P) -> flat (M, K*L)."""
+        flat[:] = 0.0
+        for column in rows.T:
+            hits = np.flatnonzero(column)
+            flat[hits] += self.blocks[column[hits]]
+
+    def _ascii_rows(self, joined: str, kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
+        """(M, P) store rows of ASCII types whose texts (without the separator) are joined by it."""
+        data = joined.encode("ascii")
+        shapes = data.translate(_ASCII_SHAPES).decode("ascii").split(_JOIN)
+        lower_data = data.lower()
+        lowers = lower_data.decode("ascii").split(_JOIN)
+        codes = np.frombuffer(lower_data, dtype=np.uint8)
+        return self._part_rows(shapes, lowers, codes, 7, kind_ids, kind_names)
+
+    def _general_rows(self, texts: list[str], kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
+        """(M, P) store rows of any types, one text at a time where it matters."""
+        shapes = list(map(str.translate, texts, repeat(_SHAPE_TABLE)))
+        # lower() per text: for non-ASCII text it can depend on the neighbouring characters (final sigma).
         lowers = list(map(str.lower, texts))
+        codes = np.frombuffer(_JOIN.join(lowers).encode("utf-32-le", "surrogatepass"), dtype=np.uint32)
+        bits = max(int(codes.max()).bit_length(), 1) if codes.size else 1
+        non_ascii = np.flatnonzero(~np.fromiter(map(str.isascii, texts), dtype=bool, count=len(texts))).tolist()
+        for n in non_ascii:
+            shapes[n] += _NON_ASCII_MARK
+        rows = [self._part_rows(shapes, lowers, codes, bits, kind_ids, kind_names)]
+        for holds, row in self.flag_rows:
+            column = np.zeros((len(texts), 1), dtype=np.int64)
+            column[[n for n in non_ascii if holds(texts[n])]] = row
+            rows.append(column)
+        return np.concatenate(rows, axis=1)
+
+    def _part_rows(self, shapes: list[str], lowers: list[str], codes: np.ndarray, bits: int,
+                   kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
+        """(M, P) store rows: shape value, shape rest, lower form, long lower form, affixes."""
+        n_types = len(shapes)
+        columns = self._shape_rows(shapes, kind_ids, kind_names)
         word = np.fromiter(map(self.word_rows.get, lowers, repeat(0)), dtype=np.int64, count=n_types)
-        hits = np.flatnonzero(word)
-        out[hits] += self.word_blocks[word[hits]]
+        columns.append(word)
+        lengths = np.fromiter(map(len, lowers), dtype=np.int64, count=n_types)
         if self.use_lower:
-            lengths = np.fromiter(map(len, lowers), dtype=np.int64, count=n_types)
-            for n in np.flatnonzero((lengths > self.cut) & (word == 0)).tolist():   # rare: long tokens
-                out[n] += self.cut_blocks[self.cut_rows.get(lowers[n][: self.cut], 0)]
-        if self.affix_lookups:
-            # One block row per type and affix (0 when unknown), summed by one sparse product over the
-            # known ones: a single pass over the output.
-            columns = np.empty((n_types, len(self.affix_lookups)), dtype=np.int64)
-            for j, (cut, rows) in enumerate(self.affix_lookups):
-                columns[:, j] = np.fromiter(map(rows.get, map(itemgetter(cut), lowers), repeat(0)),
-                                            dtype=np.int64, count=n_types)
-            known = columns > 0
-            indptr = np.zeros(n_types + 1, dtype=np.int64)
-            np.cumsum(known.sum(axis=1), out=indptr[1:])
-            selector = csr_matrix((np.ones(int(indptr[-1])), columns[known], indptr),
-                                  shape=(n_types, self.affix_flat.shape[0]))
-            out += (selector @ self.affix_flat).reshape(out.shape)
+            long_forms = np.flatnonzero((lengths > self.cut) & (word == 0)).tolist()
+            column = np.zeros(n_types, dtype=np.int64)
+            if long_forms:
+                cut_rows, cut = self.cut_rows, self.cut
+                column[long_forms] = [cut_rows.get(lowers[n][:cut], 0) for n in long_forms]
+            columns.append(column)
+        rows = np.stack(columns, axis=1)
+        if self.affixes is not None:
+            rows = np.concatenate([rows, self.affixes.rows(lowers, codes, bits, lengths)], axis=1)
+        return rows
+
+    def _shape_rows(self, shapes: list[str], kind_ids: np.ndarray, kind_names: list[str]) -> list[np.ndarray]:
+        """(M,) store rows of each type's shape value, collapsed shape value, and the rest of its shape
+        features with its kind (kind, length, flags: `_add_shapes`)."""
+        n_types = len(shapes)
+        shape_ids = self.shape_ids
+        ids = np.fromiter(map(shape_ids.get, shapes, repeat(-1)), dtype=np.int64, count=n_types)
+        new = np.flatnonzero(ids < 0)
+        if new.size:
+            new_shapes = [shapes[n] for n in new.tolist()]
+            self._add_shapes(list(dict.fromkeys(new_shapes)))
+            ids[new] = np.fromiter(map(shape_ids.__getitem__, new_shapes), dtype=np.int64, count=new.size)
+        if len(kind_names) > self.class_of.shape[1]:
+            self.class_of = _grown_to(self.class_of, self.class_of.shape[0], len(kind_names), -1)
+        signatures = self.signature_of[ids]
+        rest = self.class_of[signatures, kind_ids]
+        missing = np.flatnonzero(rest < 0)
+        if missing.size:
+            n_kinds = self.class_of.shape[1]
+            pairs = np.unique(signatures[missing] * n_kinds + kind_ids[missing])
+            self._add_classes(pairs // n_kinds, pairs % n_kinds, kind_names)
+            rest[missing] = self.class_of[signatures[missing], kind_ids[missing]]
+        return [self.value_of[ids], self.collapsed_of[ids], rest]
+
+    def _add_shapes(self, new_shapes: list[str]) -> None:
+        """Register distinct new shapes: their value rows and their signatures.
+
+        A shape's features other than its values (the shape flags, the ASCII case flags, the length
+        bucket) follow from its signature: the set of its characters (each shape flag tests for a
+        character class, or for the first character), its first character, its length bucket, whether
+        it is ASCII and, for ASCII, str.istitle of it (the only flag that depends on the order). Hosts
+        of every name length or ids of every hex digit pattern share a handful of signatures."""
+        first = self.n_shapes
+        self.n_shapes += len(new_shapes)
+        self.shape_ids.update(zip(new_shapes, range(first, self.n_shapes)))
+        if self.n_shapes > self.value_of.size:
+            size = 2 * self.n_shapes
+            self.value_of, self.collapsed_of, self.signature_of = (
+                _grown_to(array, size, None, 0) for array in (self.value_of, self.collapsed_of, self.signature_of))
+        bare = [shape.removesuffix(_NON_ASCII_MARK) for shape in new_shapes]
+        cut = self.cut
+        if self.shape_value_rows:
+            value_rows = self.shape_value_rows
+            self.value_of[first : self.n_shapes] = [value_rows.get(shape[:cut], 0) for shape in bare]
+        if self.collapsed_value_rows:
+            collapsed_rows = self.collapsed_value_rows
+            self.collapsed_of[first : self.n_shapes] = [collapsed_rows.get(collapsed[:cut], 0)
+                                                        for collapsed in _collapsed(bare)]
+        bounds = self.spec.length_bounds if self.use["length"] else ()
+        buckets = np.searchsorted(np.array(bounds, dtype=np.int64),
+                                  np.fromiter(map(len, bare), dtype=np.int64, count=len(bare))).tolist()
+        signature_ids = self.signature_ids
+        numbers = []
+        for shape, marked, bucket in zip(bare, new_shapes, buckets):
+            is_ascii = not marked.endswith(_NON_ASCII_MARK)
+            signature = (frozenset(shape), shape[:1], bucket, is_ascii and shape.replace("d", "0").istitle(),
+                         is_ascii)
+            number = signature_ids.get(signature)
+            if number is None:
+                number = signature_ids[signature] = len(self.signature_shapes)
+                self.signature_shapes.append((shape, is_ascii))
+            numbers.append(number)
+        self.signature_of[first : self.n_shapes] = numbers
+        if len(self.signature_shapes) > self.class_of.shape[0]:
+            self.class_of = _grown_to(self.class_of, 2 * len(self.signature_shapes), self.class_of.shape[1], -1)
+
+    def _add_classes(self, signatures: np.ndarray, kind_ids: np.ndarray, kind_names: list[str]) -> None:
+        """Store the blocks of new (signature, kind) pairs: kind, length bucket, shape and case flags."""
+        spec, use = self.spec, self.use
+        pair_lists = []
+        for signature, kind_id in zip(signatures.tolist(), kind_ids.tolist()):
+            shape, is_ascii = self.signature_shapes[signature]    # any shape of the signature will do
+            names = ["kind=" + kind_names[kind_id]] if use["kind"] else []
+            if use["length"]:
+                names.append(_length_feature(len(shape), spec.length_bounds))
+            names += ["flag=" + name for name, holds in self.shape_flags if holds(shape)]
+            if is_ascii:
+                stand_in = shape.replace("d", "0")    # same case classes as any ASCII text of this shape
+                names += ["flag=" + name for name, holds in self.text_flags if holds(stand_in)]
+            pair_lists.append(self.known(names))
+        scored = [pairs for pairs in pair_lists if pairs]
+        first = self._store(scored)
+        rows = np.zeros(len(pair_lists), dtype=np.int64)
+        rows[[bool(pairs) for pairs in pair_lists]] = np.arange(first, first + len(scored))
+        self.class_of[signatures, kind_ids] = rows
+
+    def _store(self, pair_lists: list[Pairs]) -> int:
+        """Append the blocks of these (slot, id) pair lists to the store; the row of the first."""
+        first, needed = self.n_blocks, self.n_blocks + len(pair_lists)
+        if needed > self.blocks.shape[0]:
+            self.blocks = _grown_to(self.blocks, 2 * needed, None, 0.0)
+            self.slot_masks = _grown_to(self.slot_masks, 2 * needed, None, 0)
+        if pair_lists:
+            blocks = _block_sums(self.weights, self.n_slots, pair_lists)           # (U, K, L)
+            self.blocks[first:needed] = blocks.reshape(len(pair_lists), self.width)
+            filled = (blocks != 0).any(axis=2)                                       # (U, K)
+            if self.n_slots < 63:
+                self.slot_masks[first:needed] = filled @ (1 << np.arange(self.n_slots, dtype=np.int64))
+            else:
+                self.slot_masks[first:needed] = -1
+        self.n_blocks = needed
+        return first
+
+
+def _grown_to(array: np.ndarray, rows: int, columns: int | None, fill) -> np.ndarray:
+    """A copy of ``array`` with at least ``rows`` rows (and ``columns`` columns), the new cells ``fill``."""
+    shape = (max(rows, array.shape[0]),) + (() if columns is None else (max(columns, array.shape[1]),))
+    if array.ndim == 2 and columns is None:
+        shape += array.shape[1:]
+    grown = np.full(shape, fill, dtype=array.dtype)
+    grown[tuple(slice(0, size) for size in array.shape)] = array
+    return grown
+
+
+def _collapsed(shapes: list[str]) -> list[str]:
+    """[collapse_runs(shape) for shape in shapes], one numpy pass over their joined code points."""
+    joined = _JOIN.join(shapes)
+    if joined.count(_JOIN) != len(shapes) - 1:     # a shape holds the separator (a NUL character)
+        return list(map(collapse_runs, shapes))
+    codes = np.frombuffer(joined.encode("utf-32-le", "surrogatepass"), dtype=np.uint32)
+    keep = np.ones(codes.size, dtype=bool)
+    np.not_equal(codes[1:], codes[:-1], out=keep[1:])
+    keep |= codes == ord(_JOIN)                     # empty shapes keep their separators
+    return codes[keep].tobytes().decode("utf-32-le", "surrogatepass").split(_JOIN)
 
 
 def _emission_kernel():
@@ -1045,7 +1366,10 @@ class EmissionScorer:
         self.constant_rows = self._weight_rows(constants)                   # (C, L)
         self.slot_offsets = self.rows.offsets.astype(np.int64)               # (K,), offsets[0] = 0
         self._kind_ids: dict[str, int] = {}
-        self._reset(capacity=1024)
+        self._kind_names: list[str] = []
+        # The whole table at once: untouched rows cost no memory (the system maps zero pages as they
+        # are first written), and it never has to be copied to grow (unless one batch outgrows it).
+        self._reset(capacity=self.cache_size + 1)
 
     def _weight_rows(self, ids: np.ndarray) -> np.ndarray:
         """W[ids] with a zero row for id -1 (a feature outside the vocabulary)."""
@@ -1054,19 +1378,19 @@ class EmissionScorer:
         return rows
 
     def _reset(self, capacity: int) -> None:
-        # Two indexes to the same rows: by text alone, for the first kind a text came with (almost
-        # every text only ever has one), and by (text, kind) for all. The first is one C-level map per
-        # batch; the second builds a tuple per token, so it serves only the tokens the first misses.
+        # Two indexes to the rows: by text, for the first kind a text came with (almost every text only
+        # ever has one), so that one C-level map per batch finds nearly every token; and by (text,
+        # kind id) for a text's other kinds, looked up only for tokens whose text came with another kind.
         self.row_of_text: dict[str, int] = {}
-        self.row_of_type: dict[tuple[str, str], int] = {}
+        self.row_of_type: dict[tuple[str, int], int] = {}
         self.n_rows = 1
         if hasattr(self, "table") and self.table.shape[0] >= capacity:
             # Keep the table: it refills to the same size, and freeing and regrowing it would make
             # resident memory rise and fall with every refill instead of staying flat.
-            self.kind_of_row[1:] = -1
+            self.kind_of_row[1:] = None
             return
         self.table = np.zeros((capacity, self.n_slots, self.n_labels))     # (capacity, K, L)
-        self.kind_of_row = np.full(capacity, -1, dtype=np.int64)          # (capacity,) kind id
+        self.kind_of_row = np.full(capacity, None, dtype=object)          # (capacity,) kind
         boundary = self.constant_rows[self.rows.boundary_base:]
         self.table[self._BOUNDARY, 1:] = boundary                           # slot k -> offsets[k]
 
@@ -1076,50 +1400,85 @@ class EmissionScorer:
         if len(kinds) != n:
             raise DataError(f"{n} tokens but {len(kinds)} kinds")
         rows = np.fromiter(map(self.row_of_text.get, texts, repeat(self._BOUNDARY)), dtype=np.int64, count=n)
-        # A kind not seen yet gets -2, which matches no row: such tokens take the path that registers it.
-        kind_ids = np.fromiter(map(self._kind_ids.get, kinds, repeat(-2)), dtype=np.int64, count=n)
-        other = np.flatnonzero(self.kind_of_row[rows] != kind_ids)   # new, or the text's other kind
+        # Kinds compared as objects: building the object array and comparing (equal strings, mostly the
+        # very same objects) costs about half of a dict lookup per token. Unused rows hold None.
+        other = np.flatnonzero(self.kind_of_row[rows] != np.array(kinds, dtype=object))  # new, or another kind
+        if not other.size:
+            return rows
         if self.n_rows + other.size > self.cache_size:
             # The table may have to start afresh, which would orphan the rows found above: redo all.
             self._reset(capacity=self.table.shape[0])
-            return self._rows_by_type(texts, kinds)
-        if other.size:
-            picked = other.tolist()
-            rows[other] = self._rows_by_type([texts[i] for i in picked], [kinds[i] for i in picked])
+            other = np.arange(n)
+            rows[:] = self._BOUNDARY
+        picked = other.tolist()
+        rows[other] = self._other_rows([texts[i] for i in picked], [kinds[i] for i in picked],
+                                       rows[other] != self._BOUNDARY)
         return rows
 
     def _kind_id(self, kind: str) -> int:
         kind_id = self._kind_ids.get(kind)
         if kind_id is None:
-            kind_id = self._kind_ids[kind] = len(self._kind_ids)
+            kind_id = self._kind_ids[kind] = len(self._kind_names)
+            self._kind_names.append(kind)
         return kind_id
 
-    def _rows_by_type(self, texts: list[str], kinds: list[str]) -> np.ndarray:
-        token_type, keys = token_types(texts, kinds)
-        rows = list(map(self.row_of_type.get, keys))                       # distinct types only
-        missing = [n for n, row in enumerate(rows) if row is None]
-        if missing:
-            if self.n_rows + len(missing) > self.cache_size:
-                self._reset(capacity=self.table.shape[0])
-                missing = list(range(len(keys)))
-            new_rows = self._add_types([keys[n] for n in missing])
-            for n, row in zip(missing, new_rows):
-                rows[n] = row
-        return np.asarray(rows, dtype=np.int64)[token_type]
+    def _other_rows(self, texts: list[str], kinds: list[str], text_known: np.ndarray) -> np.ndarray:
+        """(M,) rows of tokens the text index did not place: new types, or a known text's other kind
+        (``text_known``). Scores the new types."""
+        kind_ids = np.fromiter(map(self._kind_ids.get, kinds, repeat(-1)), dtype=np.int64, count=len(kinds))
+        for n in np.flatnonzero(kind_ids < 0).tolist():    # a kind seen for the first time
+            kind_ids[n] = self._kind_id(kinds[n])
+        distinct = list(dict.fromkeys(texts))
+        type_of_token = None
+        if len(distinct) == len(texts):      # the usual case: each token is a type of its own
+            type_texts, type_kinds, type_text_known = texts, kind_ids, text_known
+        else:
+            text_number = dict(zip(distinct, range(len(distinct))))
+            numbers = np.fromiter(map(text_number.__getitem__, texts), dtype=np.int64, count=len(texts))
+            kind_of_text = np.empty(len(distinct), dtype=np.int64)
+            kind_of_text[numbers] = kind_ids
+            if np.array_equal(kind_of_text[numbers], kind_ids):    # each text with one kind (usual)
+                type_of_token, type_texts, type_kinds = numbers, distinct, kind_of_text
+                type_text_known = np.zeros(len(distinct), dtype=bool)
+                type_text_known[numbers] = text_known
+            else:
+                _, first, type_of_token = np.unique(numbers * len(self._kind_names) + kind_ids, return_index=True,
+                                                    return_inverse=True)
+                type_texts = [texts[i] for i in first.tolist()]
+                type_kinds, type_text_known = kind_ids[first], text_known[first]
+        rows = np.zeros(len(type_texts), dtype=np.int64)
+        for n in np.flatnonzero(type_text_known).tolist():     # rare: a text with a second kind
+            rows[n] = self.row_of_type.get((type_texts[n], int(type_kinds[n])), 0)
+        new = np.flatnonzero(rows == 0)
+        if new.size == rows.size:
+            all_texts_new = len(type_texts) == len(distinct) and not type_text_known.any()
+            rows[:] = self._add_types(type_texts, type_kinds, all_texts_new)
+        elif new.size:
+            rows[new] = self._add_types([type_texts[n] for n in new.tolist()], type_kinds[new], False)
+        return rows if type_of_token is None else rows[type_of_token.reshape(-1)]
 
-    def _add_types(self, keys: list[tuple[str, str]]) -> list[int]:
-        """Score new types into the table (per slot, the sum of W over the type's ids there)."""
-        first, n_new = self.n_rows, len(keys)
+    def _add_types(self, texts: list[str], kind_ids: np.ndarray, all_texts_new: bool) -> np.ndarray:
+        """Score new types (texts[m], kind ids[m]) into the table; (M,) their rows.
+
+        ``all_texts_new``: the texts are distinct and none has a row yet (the usual case)."""
+        first, n_new = self.n_rows, len(texts)
         self._grow(first + n_new)
-        self.type_scorer.scores(keys, out=self.table[first : first + n_new])
+        self.type_scorer.scores(texts, kind_ids, self._kind_names, out=self.table[first : first + n_new])
         self.n_rows = first + n_new
-        new_rows = list(range(first, first + n_new))
-        self.kind_of_row[first : first + n_new] = [self._kind_id(kind) for _, kind in keys]
-        for key, row in zip(keys, new_rows):
-            if len(key[0]) <= _MAX_CACHED_CHARS:   # long texts seldom repeat: scored, not kept
-                self.row_of_type[key] = row
-                self.row_of_text.setdefault(key[0], row)
-        return new_rows
+        self.kind_of_row[first : first + n_new] = [self._kind_names[kind] for kind in kind_ids.tolist()]
+        # Long texts seldom repeat: scored, not kept.
+        if all_texts_new and max(map(len, texts)) <= _MAX_CACHED_CHARS:
+            self.row_of_text.update(zip(texts, range(first, first + n_new)))
+        else:
+            row_of_text, row_of_type = self.row_of_text, self.row_of_type
+            for text, kind_id, row in zip(texts, kind_ids.tolist(), range(first, first + n_new)):
+                if len(text) > _MAX_CACHED_CHARS:
+                    continue
+                if text in row_of_text:
+                    row_of_type[(text, kind_id)] = row
+                else:
+                    row_of_text[text] = row
+        return np.arange(first, first + n_new)
 
     def _grow(self, needed: int) -> None:
         capacity = self.table.shape[0]
@@ -1130,7 +1489,7 @@ class EmissionScorer:
         grown = np.zeros((capacity, self.n_slots, self.n_labels))
         grown[: self.n_rows] = self.table[: self.n_rows]
         self.table = grown
-        kinds = np.full(capacity, -1, dtype=np.int64)
+        kinds = np.full(capacity, None, dtype=object)
         kinds[: self.n_rows] = self.kind_of_row[: self.n_rows]
         self.kind_of_row = kinds
 

@@ -632,3 +632,113 @@ def test_compiled_emissions_equal_the_numpy_code(cfg, batch, seed):
     assert np.array_equal(compiled, scorer._emissions_numpy(rows, lengths))
     np.testing.assert_allclose(compiled, _reference_emissions(extractor, batch, scorer.weights)[0],
                                rtol=0, atol=1e-9)
+
+
+# --- the new-type path on awkward text ---------------------------------------------------------------
+# The scorer handles a batch's new types together: it joins their texts with NUL to lower-case, shape
+# and encode them in one call, marks non-ASCII shapes with U+FFFF, and finds prefixes and suffixes by
+# their code points packed into integers (up to 21 bits each). So the texts below hold NUL, U+FFFF,
+# the capital sigma (whose lower case depends on the next character: Unicode SpecialCasing, Final_Sigma),
+# a letter outside the Basic Multilingual Plane, a CJK character and Latin-1 letters, and the specs
+# take affixes too long to pack. References as above: the plain extractor (Python's str methods, i.e.
+# the Unicode character database) and scipy's sparse product.
+
+WIDE_ALPHABET = "aZ09-.:" + "\x00\uffffΣσüİ中𝔘"
+wide_text = st.one_of(st.text(WIDE_ALPHABET, min_size=1, max_size=12), st.sampled_from(POOL + ["ΑΣ", "ΑΣ.b"]))
+
+
+@st.composite
+def wide_batches(draw):
+    lines = []
+    for _ in range(draw(st.integers(1, 5))):
+        texts = draw(st.lists(wide_text, min_size=0, max_size=8))
+        lines.append((texts, draw(st.lists(st.sampled_from(KINDS), min_size=len(texts), max_size=len(texts)))))
+    return lines
+
+
+@st.composite
+def long_affix_specs(draw):
+    cfg = draw(spec_dicts())
+    # up to 10 characters: past what fits in the packed integer for ASCII (8) and for wide code points (2)
+    cfg["token"]["prefix_lengths"] = sorted(draw(st.sets(st.integers(1, 10), min_size=1, max_size=4)))
+    cfg["token"]["suffix_lengths"] = sorted(draw(st.sets(st.integers(1, 10), min_size=1, max_size=4)))
+    cfg["token"]["groups"] = sorted(set(cfg["token"]["groups"]) | {"prefix", "suffix"})
+    return cfg
+
+
+@SETTINGS
+@given(long_affix_specs(), st.lists(wide_batches(), min_size=1, max_size=3), st.integers(1, 40),
+       st.integers(0, 2**32 - 1))
+def test_emission_scorer_on_wide_text_equals_sparse_product(cfg, batch_list, cache_size, seed):
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    vocabulary = extractor.fit([s for b in batch_list for s in b])
+    first = batch_list[0]
+    # the extractor itself against the plain reference (Python's str methods) on this text
+    assert decoded_rows(extractor.transform(first)[0], vocabulary) == \
+        [sorted(row) for texts, kinds in first for row in ref_features(texts, kinds, cfg)]
+    weights = np.random.default_rng(seed).normal(size=(extractor.n_features, 3))
+    scorer = EmissionScorer(extractor, weights, cache_size=cache_size)
+    for batch in batch_list + batch_list:
+        expected, lengths = _reference_emissions(extractor, batch, weights)   # scipy's sparse product
+        np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(batch)), lengths), expected,
+                                   rtol=0, atol=1e-9)
+
+
+def test_emission_scorer_on_final_sigma_and_nul():
+    # "ΑΣ" lower-cases to "ας" (final sigma) alone but "ασ" before a letter (Unicode SpecialCasing,
+    # Final_Sigma; Python's str.lower follows it), so a batch's texts must not be lower-cased as one
+    # string with anything after them. A NUL inside a text must not split it.
+    cfg = dict(FULL_SPEC, token=dict(FULL_SPEC["token"], max_value_chars=10))
+    lines = [(["ΑΣ", "ΑΣb", "a\x00b", "ΑΣ"], ["word", "word", "word", "ident"]), (["b", "ΑΣ"], ["word"] * 2)]
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    extractor.fit(lines)
+    assert "lower=ας" in extractor.vocabulary and "lower=ασb" in extractor.vocabulary   # Python's str.lower
+    weights = np.random.default_rng(11).normal(size=(extractor.n_features, 4))
+    scorer = EmissionScorer(extractor, weights)
+    for sub in (lines, lines[::-1]):
+        expected, lengths = _reference_emissions(extractor, sub, weights)           # scipy's sparse product
+        np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(sub)), lengths), expected,
+                                   rtol=0, atol=1e-9)
+
+
+@SETTINGS
+@given(st.lists(st.text(WIDE_ALPHABET + "bcdXY_/@=", min_size=20, max_size=300), min_size=1, max_size=6),
+       st.integers(1, 8))
+def test_emission_scorer_long_texts_with_two_kinds(texts, cache_size):
+    # Long texts (past the value cut, some past the length the table keeps) each come with two kinds,
+    # twice in one batch; the table must keep the kinds apart and stay bounded.
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    batch = [(texts, ["word"] * len(texts)), (texts[::-1], ["hex"] * len(texts)), (texts, ["word"] * len(texts))]
+    extractor.fit(batch)
+    weights = np.random.default_rng(len(texts)).normal(size=(extractor.n_features, 3))
+    scorer = EmissionScorer(extractor, weights, cache_size=cache_size)
+    for _ in range(2):
+        expected, lengths = _reference_emissions(extractor, batch, weights)         # scipy's sparse product
+        np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(batch)), lengths), expected,
+                                   rtol=0, atol=1e-9)
+    assert scorer.n_rows <= max(cache_size, 3 * len(texts)) + 1
+
+
+@SETTINGS
+@given(long_affix_specs(), st.lists(wide_batches(), min_size=1, max_size=2), st.integers(0, 2**32 - 1))
+def test_compiled_type_scores_equal_the_numpy_code(cfg, batch_list, seed):
+    # The compiled affix lookup finds the same rows as the numpy search, and the compiled block sums add
+    # in the numpy code's order: the two tables are equal bit for bit. (Both equal scipy's product, above.)
+    from streamtag import crf
+    from streamtag.features import _feature_kernels
+
+    assert _feature_kernels() is not None      # numba is a dependency: the kernels must load
+    extractor = FeatureExtractor(FeatureSpec.from_dict(cfg))
+    extractor.fit([s for b in batch_list for s in b])
+    weights = np.random.default_rng(seed).normal(size=(extractor.n_features, 3))
+    compiled, plain = EmissionScorer(extractor, weights), EmissionScorer(extractor, weights)
+    switch = crf.USE_KERNELS
+    for batch in batch_list:
+        rows = compiled.type_rows(*_flat(batch))
+        crf.USE_KERNELS = False
+        try:
+            assert np.array_equal(plain.type_rows(*_flat(batch)), rows)
+        finally:
+            crf.USE_KERNELS = switch
+    assert compiled.n_rows == plain.n_rows
+    assert np.array_equal(compiled.table[: compiled.n_rows], plain.table[: plain.n_rows])
