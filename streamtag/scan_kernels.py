@@ -27,6 +27,9 @@ import warnings
 
 import numba
 import numpy as np
+from llvmlite import ir
+from numba import types
+from numba.extending import intrinsic
 
 from streamtag.crf_kernels import _jit, _jit_cached
 from streamtag.tokenize import KINDS
@@ -51,6 +54,28 @@ _PAD = 64
 
 _SPACE, _DOT, _COLON, _DASH, _PLUS, _SLASH, _BACKSLASH, _TILDE = 32, 46, 58, 45, 43, 47, 92, 126
 _APOSTROPHE, _PERCENT, _AT, _UNDERSCORE, _COMMA = 39, 37, 64, 95, 44
+
+
+# ----------------------------------------------------------------------------------------------------
+# The string is read through its address: helpers that took the array itself would touch its
+# reference count at each call (atomic operations that cost more than most rules' work; measured
+# 100-500 ns per token), and inlining them all at numba's level took minutes to compile.
+
+
+@intrinsic
+def _at(typingctx, address, index):
+    """Byte `index` of the buffer at `address` (integers): one load, no bounds check. Only
+    `scan_kernel` calls the rules, on its own padded buffer, which outlives every read."""
+    if not (isinstance(address, types.Integer) and isinstance(index, types.Integer)):
+        return None
+
+    def codegen(context, builder, signature, args):
+        address_value = context.cast(builder, args[0], signature.args[0], types.intp)
+        index_value = context.cast(builder, args[1], signature.args[1], types.intp)
+        pointer = builder.inttoptr(builder.add(address_value, index_value), ir.IntType(8).as_pointer())
+        return builder.load(pointer)
+
+    return types.uint8(address, index), codegen
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -85,35 +110,35 @@ def _is_hex(c):
 
 @_jit
 def _skip_digits(s, i):
-    while _is_digit(s[i]):
+    while _is_digit(_at(s, i)):
         i += 1
     return i
 
 
 @_jit
 def _skip_word(s, i):
-    while _is_word(s[i]):
+    while _is_word(_at(s, i)):
         i += 1
     return i
 
 
 @_jit
 def _skip_letters(s, i):
-    while _is_letter(s[i]):
+    while _is_letter(_at(s, i)):
         i += 1
     return i
 
 
 @_jit
 def _skip_alnum(s, i):
-    while _is_alnum(s[i]):
+    while _is_alnum(_at(s, i)):
         i += 1
     return i
 
 
 @_jit
 def _skip_hex(s, i):
-    while _is_hex(s[i]):
+    while _is_hex(_at(s, i)):
         i += 1
     return i
 
@@ -122,7 +147,7 @@ def _skip_hex(s, i):
 def _digits_up_to(s, i, most):
     """Number of digits from i, at most `most` (a greedy {1,most} takes this many first)."""
     k = 0
-    while k < most and _is_digit(s[i + k]):
+    while k < most and _is_digit(_at(s, i + k)):
         k += 1
     return k
 
@@ -130,14 +155,14 @@ def _digits_up_to(s, i, most):
 @_jit
 def _name_goes_on(s, e):
     """_NAME_GOES_ON at e: a word character, '-'s then one, or '.' then one."""
-    c = s[e]
+    c = _at(s, e)
     if _is_word(c):
         return True
     if c == _DASH:
-        while s[e] == _DASH:
+        while _at(s, e) == _DASH:
             e += 1
-        return _is_word(s[e])
-    return c == _DOT and _is_word(s[e + 1])
+        return _is_word(_at(s, e))
+    return c == _DOT and _is_word(_at(s, e + 1))
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -150,11 +175,11 @@ _TS_DATE, _TS_BASIC, _TS_TIME = 0, 1, 2  # which closing look-ahead (form A, B, 
 @_jit
 def _timestamp_end_ok(s, e, form):
     """(?!\\w|:[0-9]) after a date form, (?!\\w) after the basic form, (?!\\w|:\\w) after a time."""
-    c = s[e]
+    c = _at(s, e)
     if _is_word(c):
         return False
     if c == _COLON:
-        after = s[e + 1]
+        after = _at(s, e + 1)
         if form == _TS_DATE and _is_digit(after):
             return False
         if form == _TS_TIME and _is_word(after):
@@ -165,16 +190,16 @@ def _timestamp_end_ok(s, e, form):
 @_jit
 def _offset_then_end(s, q, form):
     """First accepted end after _OFFSET at q: 'Z', '+hh:mm', '+hhmm', '+hh' (in that order), none; -1."""
-    c = s[q]
+    c = _at(s, q)
     if c == 90 or c == 122:  # Z z
         if _timestamp_end_ok(s, q + 1, form):
             return q + 1
-    elif (c == _PLUS or c == _DASH) and 48 <= s[q + 1] <= 50 and _is_digit(s[q + 2]):
+    elif (c == _PLUS or c == _DASH) and 48 <= _at(s, q + 1) <= 50 and _is_digit(_at(s, q + 2)):
         r = q + 3
-        if (s[r] == _COLON and 48 <= s[r + 1] <= 53 and _is_digit(s[r + 2])
+        if (_at(s, r) == _COLON and 48 <= _at(s, r + 1) <= 53 and _is_digit(_at(s, r + 2))
                 and _timestamp_end_ok(s, r + 3, form)):
             return r + 3
-        if 48 <= s[r] <= 53 and _is_digit(s[r + 1]) and _timestamp_end_ok(s, r + 2, form):
+        if 48 <= _at(s, r) <= 53 and _is_digit(_at(s, r + 1)) and _timestamp_end_ok(s, r + 2, form):
             return r + 2
         if _timestamp_end_ok(s, r, form):
             return r
@@ -186,7 +211,7 @@ def _offset_then_end(s, q, form):
 @_jit
 def _fraction_offset_then_end(s, q, form):
     """First accepted end after '(?:[.,][0-9]{1,9})?' then _OFFSET at q (9 digits down to 1, then none)."""
-    c = s[q]
+    c = _at(s, q)
     if c == _DOT or c == _COMMA:
         for digits in range(_digits_up_to(s, q + 1, 9), 0, -1):
             e = _offset_then_end(s, q + 1 + digits, form)
@@ -198,24 +223,24 @@ def _fraction_offset_then_end(s, q, form):
 @_jit
 def _is_hh_mm(s, i):
     """[0-2][0-9]:[0-5][0-9] at i."""
-    return (48 <= s[i] <= 50 and _is_digit(s[i + 1]) and s[i + 2] == _COLON
-            and 48 <= s[i + 3] <= 53 and _is_digit(s[i + 4]))
+    return (48 <= _at(s, i) <= 50 and _is_digit(_at(s, i + 1)) and _at(s, i + 2) == _COLON
+            and 48 <= _at(s, i + 3) <= 53 and _is_digit(_at(s, i + 4)))
 
 
 @_jit
 def _is_seconds(s, i):
     """:[0-6][0-9] at i."""
-    return s[i] == _COLON and 48 <= s[i + 1] <= 54 and _is_digit(s[i + 2])
+    return _at(s, i) == _COLON and 48 <= _at(s, i + 1) <= 54 and _is_digit(_at(s, i + 2))
 
 
 @_jit
 def _match_timestamp(s, p):
     # Form A: [0-9]{4}-[01][0-9]-[0-3][0-9](?:[Tt]_TIME _OFFSET)?(?!\w|:[0-9])
-    if (_digits_up_to(s, p, 4) == 4 and s[p + 4] == _DASH and 48 <= s[p + 5] <= 49
-            and _is_digit(s[p + 6]) and s[p + 7] == _DASH
-            and 48 <= s[p + 8] <= 51 and _is_digit(s[p + 9])):
+    if (_digits_up_to(s, p, 4) == 4 and _at(s, p + 4) == _DASH and 48 <= _at(s, p + 5) <= 49
+            and _is_digit(_at(s, p + 6)) and _at(s, p + 7) == _DASH
+            and 48 <= _at(s, p + 8) <= 51 and _is_digit(_at(s, p + 9))):
         q = p + 10
-        t = s[q]
+        t = _at(s, q)
         if (t == 84 or t == 116) and _is_hh_mm(s, q + 1):  # T t
             minutes_end = q + 6
             if _is_seconds(s, minutes_end):
@@ -229,7 +254,7 @@ def _match_timestamp(s, p):
             return q
     # Form B: [0-9]{8}[Tt][0-9]{6}(?:[.,][0-9]{1,9})?_OFFSET(?!\w)
     if _digits_up_to(s, p, 8) == 8:
-        t = s[p + 8]
+        t = _at(s, p + 8)
         if (t == 84 or t == 116) and _digits_up_to(s, p + 9, 6) == 6:
             e = _fraction_offset_then_end(s, p + 15, _TS_BASIC)
             if e >= 0:
@@ -247,9 +272,9 @@ def _match_timestamp(s, p):
 @_jit
 def _octet_end(s, i):
     """End of the atomic _OCTET at i (its first matching alternative, never given back), or -1."""
-    c0 = s[i]
-    c1 = s[i + 1]
-    c2 = s[i + 2]
+    c0 = _at(s, i)
+    c1 = _at(s, i + 1)
+    c2 = _at(s, i + 2)
     if c0 == 50 and c1 == 53 and 48 <= c2 <= 53:  # 25[0-5]
         return i + 3
     if c0 == 50 and 48 <= c1 <= 52 and _is_digit(c2):  # 2[0-4][0-9]
@@ -266,20 +291,20 @@ def _octet_end(s, i):
 @_jit
 def _ipv4_end_ok(s, e):
     """_END_IPV4: (?!\\w|\\.\\w)."""
-    c = s[e]
-    return not (_is_word(c) or (c == _DOT and _is_word(s[e + 1])))
+    c = _at(s, e)
+    return not (_is_word(c) or (c == _DOT and _is_word(_at(s, e + 1))))
 
 
 @_jit
 def _match_ipv4(s, p):
     q = _octet_end(s, p)
     for _ in range(3):
-        if q < 0 or s[q] != _DOT:
+        if q < 0 or _at(s, q) != _DOT:
             return -1
         q = _octet_end(s, q + 1)
     if q < 0:
         return -1
-    c = s[q]
+    c = _at(s, q)
     most = 5 if c == _COLON else 2 if c == _SLASH else 0  # :port or /prefix, longest first
     if most:
         for digits in range(_digits_up_to(s, q + 1, most), 0, -1):
@@ -297,29 +322,29 @@ def _match_ipv4(s, p):
 @_jit
 def _url_may_match(s, p):
     """_URL needs [A-Za-z][A-Za-z0-9+.\\-]{0,31}:// at p (exactly: the run cannot contain ':')."""
-    if not _is_letter(s[p]):
+    if not _is_letter(_at(s, p)):
         return False
     j = p + 1
     while j - p <= 31:
-        c = s[j]
+        c = _at(s, j)
         if not (_is_alnum(c) or c == _PLUS or c == _DOT or c == _DASH):
             break
         j += 1
-    return s[j] == _COLON and s[j + 1] == _SLASH and s[j + 2] == _SLASH
+    return _at(s, j) == _COLON and _at(s, j + 1) == _SLASH and _at(s, j + 2) == _SLASH
 
 
 @_jit
 def _email_may_match(s, p):
     """_EMAIL needs \\w[\\w.+\\-]{0,63}+(?<!\\.)@ at p (the domain is not checked)."""
-    if not _is_word(s[p]):
+    if not _is_word(_at(s, p)):
         return False
     j = p + 1
     while j - p <= 63:
-        c = s[j]
+        c = _at(s, j)
         if not (_is_word(c) or c == _DOT or c == _PLUS or c == _DASH):
             break
         j += 1
-    return s[j] == _AT and s[j - 1] != _DOT
+    return _at(s, j) == _AT and _at(s, j - 1) != _DOT
 
 
 @_jit
@@ -328,23 +353,23 @@ def _ipv6_may_match(s, p):
     form of RFC 3986 section 3.2.2 has one or the other; a MAC's five colons do not)."""
     q = p
     k = 0
-    while k < 4 and _is_hex(s[q]):
+    while k < 4 and _is_hex(_at(s, q)):
         q += 1
         k += 1
     fields = 0
     double_colon = False
-    while fields < 8 and s[q] == _COLON:
-        if s[q + 1] == _COLON:
+    while fields < 8 and _at(s, q) == _COLON:
+        if _at(s, q + 1) == _COLON:
             double_colon = True
         q += 1
         k = 0
-        while k < 4 and _is_hex(s[q]):
+        while k < 4 and _is_hex(_at(s, q)):
             q += 1
             k += 1
         fields += 1
     if fields < 2:
         return False
-    c = s[q]
+    c = _at(s, q)
     if c == _COLON or _is_hex(c):  # the guard's closing look-ahead fails
         return False
     return double_colon or fields >= 6
@@ -359,11 +384,11 @@ def _uuid_body_end(s, q):
     """End of 8-4-4-4-12 hex digits at q, or -1."""
     for group in (8, 4, 4, 4, 12):
         for _ in range(group):
-            if not _is_hex(s[q]):
+            if not _is_hex(_at(s, q)):
                 return -1
             q += 1
         if group != 12:
-            if s[q] != _DASH:
+            if _at(s, q) != _DASH:
                 return -1
             q += 1
     return q
@@ -374,7 +399,7 @@ def _is_urn_uuid(s, p):
     """[Uu][Rr][Nn]:[Uu][Uu][Ii][Dd]: at p."""
     letters = (117, 114, 110, 58, 117, 117, 105, 100, 58)  # urn:uuid: in lower case
     for k in range(9):
-        c = s[p + k]
+        c = _at(s, p + k)
         if c != letters[k] and not (letters[k] != 58 and c == letters[k] - 32):
             return False
     return True
@@ -399,17 +424,17 @@ def _match_mac(s, p):
         q = p
         ok = True
         for pair in range(6):
-            if pair and s[q] != separator:
+            if pair and _at(s, q) != separator:
                 ok = False
                 break
             q += 1 if pair else 0
-            if not (_is_hex(s[q]) and _is_hex(s[q + 1])):
+            if not (_is_hex(_at(s, q)) and _is_hex(_at(s, q + 1))):
                 ok = False
                 break
             q += 2
         if ok:
-            c = s[q]
-            if not (_is_word(c) or c == _COLON or c == _DASH or (c == _DOT and _is_word(s[q + 1]))):
+            c = _at(s, q)
+            if not (_is_word(c) or c == _COLON or c == _DASH or (c == _DOT and _is_word(_at(s, q + 1)))):
                 return q
     return -1
 
@@ -431,7 +456,7 @@ def _unix_tail_end(s, q):
     """End of _PATH_CHAR*_PATH_END at q: the greedy run gives back its trailing '.'s; -1 if all are."""
     end = -1
     while True:
-        c = s[q]
+        c = _at(s, q)
         if not _is_path_char(c):
             return end
         q += 1
@@ -444,7 +469,7 @@ def _windows_tail_end(s, q):
     """End after the optional (?:_WIN_CHAR*_WIN_END)? at q (q itself if it cannot match)."""
     end = q
     while True:
-        c = s[q]
+        c = _at(s, q)
         if not _is_win_char(c):
             return end
         q += 1
@@ -454,26 +479,26 @@ def _windows_tail_end(s, q):
 
 @_jit
 def _match_path(s, p):
-    c0 = s[p]
-    if not _is_word(s[p - 1]):  # the look-behind (?<![\w]) of the first two forms
+    c0 = _at(s, p)
+    if not _is_word(_at(s, p - 1)):  # the look-behind (?<![\w]) of the first two forms
         # Unix: (?:~[\w.\-]{0,32}+|\.\.?)?/_PATH_CHAR*_PATH_END, prefixes in the pattern's order.
         if c0 == _TILDE:
             j = p + 1
             while j - p <= 32:
-                c = s[j]
+                c = _at(s, j)
                 if not (_is_word(c) or c == _DOT or c == _DASH):
                     break
                 j += 1
-            if s[j] == _SLASH:
+            if _at(s, j) == _SLASH:
                 e = _unix_tail_end(s, j + 1)
                 if e >= 0:
                     return e
         elif c0 == _DOT:
-            if s[p + 1] == _DOT and s[p + 2] == _SLASH:
+            if _at(s, p + 1) == _DOT and _at(s, p + 2) == _SLASH:
                 e = _unix_tail_end(s, p + 3)
                 if e >= 0:
                     return e
-            if s[p + 1] == _SLASH:
+            if _at(s, p + 1) == _SLASH:
                 e = _unix_tail_end(s, p + 2)
                 if e >= 0:
                     return e
@@ -482,18 +507,18 @@ def _match_path(s, p):
             if e >= 0:
                 return e
         # Windows drive: [A-Za-z]:[\\/](?:_WIN_CHAR*_WIN_END)?
-        c2 = s[p + 2]
-        if _is_letter(c0) and s[p + 1] == _COLON and (c2 == _BACKSLASH or c2 == _SLASH):
+        c2 = _at(s, p + 2)
+        if _is_letter(c0) and _at(s, p + 1) == _COLON and (c2 == _BACKSLASH or c2 == _SLASH):
             return _windows_tail_end(s, p + 3)
     # UNC: \\\\[\w.\-]++\\(?:_WIN_CHAR*_WIN_END)?
-    if c0 == _BACKSLASH and s[p + 1] == _BACKSLASH:
+    if c0 == _BACKSLASH and _at(s, p + 1) == _BACKSLASH:
         j = p + 2
         while True:
-            c = s[j]
+            c = _at(s, j)
             if not (_is_word(c) or c == _DOT or c == _DASH):
                 break
             j += 1
-        if j > p + 2 and s[j] == _BACKSLASH:
+        if j > p + 2 and _at(s, j) == _BACKSLASH:
             return _windows_tail_end(s, j + 1)
     return -1
 
@@ -509,8 +534,8 @@ def _version_parts_end(s, q, iterations):
     e = _skip_alnum(s, q + 1)
     done = 0
     while done < iterations:
-        c = s[e]
-        if not ((c == _DOT or c == _DASH or c == _PLUS) and _is_alnum(s[e + 1])):
+        c = _at(s, e)
+        if not ((c == _DOT or c == _DASH or c == _PLUS) and _is_alnum(_at(s, e + 1))):
             break
         e = _skip_alnum(s, e + 1)
         done += 1
@@ -519,32 +544,32 @@ def _version_parts_end(s, q, iterations):
 
 @_jit
 def _match_version(s, p):
-    c0 = s[p]
+    c0 = _at(s, p)
     if c0 == 86 or c0 == 118:  # [vV][0-9]++(?:\.[0-9]++)*+
-        if not _is_digit(s[p + 1]):
+        if not _is_digit(_at(s, p + 1)):
             return -1
         q = _skip_digits(s, p + 1)
     elif _is_digit(c0):  # [0-9]++\.[0-9]++\.[0-9]++(?:\.[0-9]++)*+
         q = _skip_digits(s, p)
         for _ in range(2):
-            if not (s[q] == _DOT and _is_digit(s[q + 1])):
+            if not (_at(s, q) == _DOT and _is_digit(_at(s, q + 1))):
                 return -1
             q = _skip_digits(s, q + 1)
     else:
         return -1
-    while s[q] == _DOT and _is_digit(s[q + 1]):
+    while _at(s, q) == _DOT and _is_digit(_at(s, q + 1)):
         q = _skip_digits(s, q + 1)
     # _VERSION_SUFFIX: (?:[A-Za-z]++[0-9]*+)? then (?:[\-+~][0-9A-Za-z]++(?:[.\-+][0-9A-Za-z]++){0,10})?,
     # both greedy: letters taken first, then the parts with 10 down to 0 repeats, then without.
     for with_letters in (True, False):
         if with_letters:
-            if not _is_letter(s[q]):
+            if not _is_letter(_at(s, q)):
                 continue
             q1 = _skip_digits(s, _skip_letters(s, q))
         else:
             q1 = q
-        c = s[q1]
-        if (c == _DASH or c == _PLUS or c == _TILDE) and _is_alnum(s[q1 + 1]):
+        c = _at(s, q1)
+        if (c == _DASH or c == _PLUS or c == _TILDE) and _is_alnum(_at(s, q1 + 1)):
             e, possible = _version_parts_end(s, q1, 10)
             for repeats in range(possible, -1, -1):
                 if repeats < possible:
@@ -558,8 +583,8 @@ def _match_version(s, p):
 
 @_jit
 def _match_hex(s, p):
-    c1 = s[p + 1]
-    if s[p] == 48 and (c1 == 88 or c1 == 120) and _is_hex(s[p + 2]):  # 0[xX]_HEX++
+    c1 = _at(s, p + 1)
+    if _at(s, p) == 48 and (c1 == 88 or c1 == 120) and _is_hex(_at(s, p + 2)):  # 0[xX]_HEX++
         e = _skip_hex(s, p + 2)
         if not _name_goes_on(s, e):
             return e
@@ -568,7 +593,7 @@ def _match_hex(s, p):
     letter = False
     digit = False
     while True:
-        c = s[e]
+        c = _at(s, e)
         if _is_digit(c):
             digit = True
         elif _is_hex(c):
@@ -584,43 +609,43 @@ def _match_hex(s, p):
 @_jit
 def _number_end_ok(s, e):
     """_END_NUM: (?!\\w|\\.\\d)."""
-    c = s[e]
-    return not (_is_word(c) or (c == _DOT and _is_digit(s[e + 1])))
+    c = _at(s, e)
+    return not (_is_word(c) or (c == _DOT and _is_digit(_at(s, e + 1))))
 
 
 @_jit
 def _match_number(s, p):
-    c0 = s[p]
+    c0 = _at(s, p)
     d = p
     if c0 == _DASH or c0 == _PLUS:  # (?:(?<![\w.\-+])[\-+])? : without the sign \d cannot match at p
-        before = s[p - 1]
+        before = _at(s, p - 1)
         if _is_word(before) or before == _DOT or before == _DASH or before == _PLUS:
             return -1
         d = p + 1
-    if not _is_digit(s[d]):
+    if not _is_digit(_at(s, d)):
         return -1
     # \d++(?:\.\d++)?+(?:[eE][\-+]?\d++)?+ : possessive, one reading
     q = _skip_digits(s, d)
-    if s[q] == _DOT and _is_digit(s[q + 1]):
+    if _at(s, q) == _DOT and _is_digit(_at(s, q + 1)):
         q = _skip_digits(s, q + 1)
-    c = s[q]
+    c = _at(s, q)
     if c == 69 or c == 101:  # e E
-        sign = s[q + 1]
+        sign = _at(s, q + 1)
         r = q + 2 if sign == _DASH or sign == _PLUS else q + 1
-        if _is_digit(s[r]):
+        if _is_digit(_at(s, r)):
             q = _skip_digits(s, r)
     # unit (?:%|[A-Za-z]{1,6}+(?:/[A-Za-z]{1,3}+)?)? : greedy, so with the unit first
-    c = s[q]
+    c = _at(s, q)
     if c == _PERCENT:
         if _number_end_ok(s, q + 1):
             return q + 1
     elif _is_letter(c):
         q2 = q
-        while q2 - q < 6 and _is_letter(s[q2]):
+        while q2 - q < 6 and _is_letter(_at(s, q2)):
             q2 += 1
-        if s[q2] == _SLASH and _is_letter(s[q2 + 1]):
+        if _at(s, q2) == _SLASH and _is_letter(_at(s, q2 + 1)):
             q3 = q2 + 1
-            while q3 - q2 - 1 < 3 and _is_letter(s[q3]):
+            while q3 - q2 - 1 < 3 and _is_letter(_at(s, q3)):
                 q3 += 1
             if _number_end_ok(s, q3):
                 return q3
@@ -638,16 +663,16 @@ def _match_number(s, p):
 @_jit
 def _match_word(s, p):
     """_WORD: letters, then ('|-)letters repeats (possessive), unless a name or 'x goes on."""
-    if not _is_letter(s[p]):
+    if not _is_letter(_at(s, p)):
         return -1
     q = _skip_letters(s, p)
     while True:
-        c = s[q]
-        if (c == _APOSTROPHE or c == _DASH) and _is_letter(s[q + 1]):
+        c = _at(s, q)
+        if (c == _APOSTROPHE or c == _DASH) and _is_letter(_at(s, q + 1)):
             q = _skip_letters(s, q + 1)
         else:
             break
-    if _name_goes_on(s, q) or (s[q] == _APOSTROPHE and _is_word(s[q + 1])):
+    if _name_goes_on(s, q) or (_at(s, q) == _APOSTROPHE and _is_word(_at(s, q + 1))):
         return -1
     return q
 
@@ -656,11 +681,11 @@ def _match_word(s, p):
 def _name_end(s, i):
     """End of _NAME \\w++(?:-++\\w++)*+ at i (a word character)."""
     q = _skip_word(s, i)
-    while s[q] == _DASH:
+    while _at(s, q) == _DASH:
         j = q
-        while s[j] == _DASH:
+        while _at(s, j) == _DASH:
             j += 1
-        if not _is_word(s[j]):
+        if not _is_word(_at(s, j)):
             break
         q = _skip_word(s, j)
     return q
@@ -671,7 +696,7 @@ def _match_host(s, p):
     """_HOST: _NAME(?:\\._NAME)++."""
     q = _name_end(s, p)
     dots = 0
-    while s[q] == _DOT and _is_word(s[q + 1]):
+    while _at(s, q) == _DOT and _is_word(_at(s, q + 1)):
         q = _name_end(s, q + 1)
         dots += 1
     return q if dots else -1
@@ -681,7 +706,7 @@ def _match_host(s, p):
 def _match_ident(s, p):
     """_IDENT: _NAME(?:'_NAME)*+ ; always matches at a word character."""
     q = _name_end(s, p)
-    while s[q] == _APOSTROPHE and _is_word(s[q + 1]):
+    while _at(s, q) == _APOSTROPHE and _is_word(_at(s, q + 1)):
         q = _name_end(s, q + 1)
     return q
 
@@ -689,13 +714,77 @@ def _match_ident(s, p):
 @_jit
 def _match_punct(s, p):
     """_PUNCT: a run of two or more of - = . * # ~, else one character (all ASCII punctuation)."""
-    c = s[p]
-    if (c == _DASH or c == 61 or c == _DOT or c == 42 or c == 35 or c == _TILDE) and s[p + 1] == c:
+    c = _at(s, p)
+    if (c == _DASH or c == 61 or c == _DOT or c == 42 or c == 35 or c == _TILDE) and _at(s, p + 1) == c:
         q = p + 2
-        while s[q] == c:
+        while _at(s, q) == c:
             q += 1
         return q
     return p + 1
+
+
+# ----------------------------------------------------------------------------------------------------
+# fast paths: tokenize's _FAST_WORD, _FAST_PUNCT and _FAST_NUMBER, tried first as the pattern tries
+# them. Each accepts only what no rule of higher priority could claim (tokenize's tests check that
+# they change no token), and spares the commonest tokens the walk through a dozen rules.
+
+
+@_jit
+def _fast_word_end(s, p):
+    r"""_FAST_WORD [A-Za-z]++(?![\w.\-'+:@]) at p (a letter), or -1."""
+    q = _skip_letters(s, p)
+    c = _at(s, q)
+    if _is_word(c) or c == _DOT or c == _DASH or c == _APOSTROPHE or c == _PLUS or c == _COLON or c == _AT:
+        return -1
+    return q
+
+
+@_jit
+def _is_fast_punct(s, p):
+    r"""_FAST_PUNCT at p: [\[\](){},;"'<>|!?&$^`@%] or = : - . not starting a longer token."""
+    c = _at(s, p)
+    after = _at(s, p + 1)
+    if c == 61:  # =(?!=)
+        return after != 61
+    if c == _COLON:
+        return after != _COLON
+    if c == _DASH:
+        return after != _DASH and not _is_digit(after)
+    if c == _DOT:
+        return after != _DOT and after != _SLASH
+    return (c == 91 or c == 93 or c == 40 or c == 41 or c == 123 or c == 125 or c == _COMMA or c == 59 or c == 34
+            or c == _APOSTROPHE or c == 60 or c == 62 or c == 124 or c == 33 or c == 63 or c == 38 or c == 36
+            or c == 94 or c == 96 or c == _AT or c == _PERCENT)
+
+
+@_jit
+def _fast_number_end(s, p):
+    r"""_FAST_NUMBER at p (a digit), or -1: \d++(?:\.\d++)?+ then a unit that has a letter past 'f'
+    and does not start with x (so never a hex id), possessive, then (?![\w.:\-@+%])."""
+    q = _skip_digits(s, p)
+    if _at(s, q) == _DOT and _is_digit(_at(s, q + 1)):
+        q = _skip_digits(s, q + 1)
+    c = _at(s, q)
+    if c == _PERCENT:
+        q += 1
+    elif c != 88 and c != 120:  # (?![xX])
+        k = q  # (?=[a-fA-F]{0,5}+[g-zG-Z])
+        while k - q < 5 and _is_letter(_at(s, k)) and _is_hex(_at(s, k)):
+            k += 1
+        if _is_letter(_at(s, k)) and not _is_hex(_at(s, k)):
+            j = q
+            while j - q < 6 and _is_letter(_at(s, j)):
+                j += 1
+            q = j
+            if _at(s, q) == _SLASH and _is_letter(_at(s, q + 1)):
+                j = q + 1
+                while j - q - 1 < 3 and _is_letter(_at(s, j)):
+                    j += 1
+                q = j
+    c = _at(s, q)
+    if (_is_word(c) or c == _DOT or c == _COLON or c == _DASH or c == _AT or c == _PLUS or c == _PERCENT):
+        return -1
+    return q
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -706,7 +795,18 @@ def _match_punct(s, p):
 def _match(s, p):
     """(rule, end) of the token at p: the first rule of tokenize._RULES that matches; end _UNSURE
     where a rule not scanned could match first."""
-    if _is_word(s[p]):  # the pattern's (?=\w) branch
+    c = _at(s, p)
+    if _is_letter(c):
+        e = _fast_word_end(s, p)
+        if e >= 0:
+            return _WORD, e
+    elif _is_digit(c):
+        e = _fast_number_end(s, p)
+        if e >= 0:
+            return _NUMBER, e
+    elif _is_fast_punct(s, p):
+        return _PUNCT, p + 1
+    if _is_word(c):  # the pattern's (?=\w) branch
         e = _match_timestamp(s, p)
         if e >= 0:
             return _TIMESTAMP, e
@@ -753,33 +853,16 @@ def _match(s, p):
     return _PUNCT, _match_punct(s, p)
 
 
-@_jit
-def _scan_piece(s, a, b, kind_codes, starts, ends, kinds, n):
-    """Tokens of the piece s[a:b] appended at n (offsets in the string: one less than in s); the
-    new count, or -1 if the piece is unsure."""
-    p = a
-    while p < b:
-        rule, e = _match(s, p)
-        if e == _UNSURE:
-            return -1
-        starts[n] = p - 1
-        ends[n] = e - 1
-        kinds[n] = kind_codes[rule]
-        n += 1
-        p = e
-    return n
-
-
 @_jit_cached
 def scan_kernel(cp, kind_codes):
     """(starts (n,), ends (n,), kinds (n,) int8, unsure (P,) bool) of the batch string cp (C,)
     uint32; see `scan`."""
     size = cp.shape[0]
-    # The string as bytes s (1 + C + _PAD,): s[i + 1] is character i, 0 for ' ' and for the
+    # The string as bytes (1 + C + _PAD,): byte i + 1 is character i, 0 for ' ' and for the
     # edges. No rule matches a 0, so every scan stops there as the pattern stops at a ' ' or
     # the edge of the string, and no read needs a bounds check. Other characters than printable
     # ASCII make their piece unsure (and read as DEL, which no rule here matches either).
-    s = np.zeros(size + 1 + _PAD, dtype=np.uint8)
+    buffer = np.zeros(size + 1 + _PAD, dtype=np.uint8)
     n_pieces = 1
     for i in range(size):
         if cp[i] == _SPACE:
@@ -791,10 +874,11 @@ def scan_kernel(cp, kind_codes):
         if c == _SPACE:
             piece += 1
         elif 0x21 <= c <= 0x7E:
-            s[i + 1] = c
+            buffer[i + 1] = c
         else:
-            s[i + 1] = 0x7F
+            buffer[i + 1] = 0x7F
             unsure[piece] = True
+    s = np.intp(buffer.ctypes.data)  # read by _at; buffer stays alive to the end
     starts = np.empty(size, dtype=np.int64)
     ends = np.empty(size, dtype=np.int64)
     kinds = np.empty(size, dtype=np.int8)
@@ -802,15 +886,27 @@ def scan_kernel(cp, kind_codes):
     piece = 0
     a = 1
     for i in range(1, size + 2):
-        if i == size + 1 or s[i] == 0:
-            if not unsure[piece]:
-                found = -1 if i - a > MAX_PIECE else _scan_piece(s, a, i, kind_codes, starts, ends, kinds, n)
-                if found < 0:
+        if i <= size and buffer[i] != 0:
+            continue
+        # the piece is buffer[a:i]
+        if not unsure[piece] and i - a > MAX_PIECE:
+            unsure[piece] = True
+        if not unsure[piece]:
+            first = n
+            p = a
+            while p < i:
+                rule, e = _match(s, p)
+                if e == _UNSURE:
                     unsure[piece] = True
-                else:
-                    n = found
-            piece += 1
-            a = i + 1
+                    n = first
+                    break
+                starts[n] = p - 1
+                ends[n] = e - 1
+                kinds[n] = kind_codes[rule]
+                n += 1
+                p = e
+        piece += 1
+        a = i + 1
     return starts[:n].copy(), ends[:n].copy(), kinds[:n].copy(), unsure
 
 
