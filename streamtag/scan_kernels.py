@@ -724,7 +724,7 @@ def _match_punct(s, p):
 
 
 # ----------------------------------------------------------------------------------------------------
-# fast paths: tokenize's _FAST_WORD, _FAST_PUNCT and _FAST_NUMBER, tried first as the pattern tries
+# fast paths: tokenize's _FAST_WORD, _FAST_PUNCT, _FAST_NUMBER, _FAST_HOST and _FAST_IDENT, tried first as the pattern tries
 # them. Each accepts only what no rule of higher priority could claim (tokenize's tests check that
 # they change no token), and spares the commonest tokens the walk through a dozen rules.
 
@@ -787,6 +787,53 @@ def _fast_number_end(s, p):
     return q
 
 
+@_jit
+def _fast_host_end(s, p):
+    r"""_FAST_HOST at p (a letter or '_'), or -1: not v1..., a dotted name, then
+    (?![+\-@]|\.[.+\-@:]|:/) (not an e-mail local part nor a URL scheme)."""
+    c = _at(s, p)
+    if (c == 86 or c == 118) and _is_digit(_at(s, p + 1)):
+        return -1
+    q = _match_host(s, p)
+    if q < 0:
+        return -1
+    c = _at(s, q)
+    after = _at(s, q + 1)
+    if c == _PLUS or c == _DASH or c == _AT:
+        return -1
+    if c == _DOT and (after == _DOT or after == _PLUS or after == _DASH or after == _AT or after == _COLON):
+        return -1
+    if c == _COLON and after == _SLASH:
+        return -1
+    return q
+
+
+@_jit
+def _fast_ident_end(s, p):
+    r"""_FAST_IDENT at p (a letter or '_'), or -1: a digit or '_' after the leading letters and
+    dashes, a letter past 'f' or '_' after the leading hex digits and dashes, not v1..., then
+    _IDENT and (?![.+\-:'@])."""
+    k = p
+    while _is_letter(_at(s, k)) or _at(s, k) == _DASH:
+        k += 1
+    if not (_is_digit(_at(s, k)) or _at(s, k) == _UNDERSCORE):
+        return -1
+    k = p
+    while _is_hex(_at(s, k)) or _at(s, k) == _DASH:
+        k += 1
+    c = _at(s, k)
+    if not ((_is_letter(c) and not _is_hex(c)) or c == _UNDERSCORE):
+        return -1
+    c = _at(s, p)
+    if (c == 86 or c == 118) and _is_digit(_at(s, p + 1)):
+        return -1
+    q = _match_ident(s, p)
+    c = _at(s, q)
+    if c == _DOT or c == _PLUS or c == _DASH or c == _COLON or c == _APOSTROPHE or c == _AT:
+        return -1
+    return q
+
+
 # ----------------------------------------------------------------------------------------------------
 # dispatch in the pattern's order, and the kernel
 
@@ -796,10 +843,16 @@ def _match(s, p):
     """(rule, end) of the token at p: the first rule of tokenize._RULES that matches; end _UNSURE
     where a rule not scanned could match first."""
     c = _at(s, p)
-    if _is_letter(c):
-        e = _fast_word_end(s, p)
+    if _is_letter(c) or c == _UNDERSCORE:
+        e = _fast_word_end(s, p) if c != _UNDERSCORE else -1
         if e >= 0:
             return _WORD, e
+        e = _fast_host_end(s, p)
+        if e >= 0:
+            return _HOST, e
+        e = _fast_ident_end(s, p)
+        if e >= 0:
+            return _IDENT, e
     elif _is_digit(c):
         e = _fast_number_end(s, p)
         if e >= 0:
