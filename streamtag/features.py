@@ -84,7 +84,9 @@ def collapse_runs(shape: str) -> str:
 
 # Character-class flags. Most are functions of the word shape alone ('X', 'x' and 'd' appear in a shape
 # only as classes, other characters literally), which lets the extractor cache them per shape; the
-# three that follow Python's str case predicates need the text itself.
+# three that follow Python's str case predicates need the text itself. The emission scorer groups
+# shapes by the flag characters they hold (`_FLAG_CHARS`): a new shape flag may test only the presence
+# of characters listed there, or the first character.
 SHAPE_FLAGS: dict[str, Callable[[str], bool]] = {
     "has_digit": lambda shape: "d" in shape,
     "all_digit": lambda shape: not shape.strip("d"),
@@ -857,9 +859,9 @@ def _block_sums(weights: np.ndarray, n_slots: int, pair_lists: list[Pairs]) -> n
     pairs = np.fromiter(chain.from_iterable(pair_lists), dtype=np.int64, count=int(counts.sum()))
     segment = np.repeat(np.arange(len(pair_lists)) * n_slots, counts) + (pairs >> _SLOT_SHIFT)
     ids = pairs & ((1 << _SLOT_SHIFT) - 1)
-    selector = csr_matrix((np.ones(ids.size), (segment, ids)),
-                          shape=(len(pair_lists) * n_slots, weights.shape[0]))
-    return np.asarray(selector @ weights).reshape(len(pair_lists), n_slots, weights.shape[1])
+    sums = np.zeros((len(pair_lists) * n_slots, weights.shape[1]))
+    np.add.at(sums, segment, weights[ids])
+    return sums.reshape(len(pair_lists), n_slots, weights.shape[1])
 
 
 def _packed_affixes(codes: np.ndarray, anchors: np.ndarray, step: int, width: int, bits: int) -> np.ndarray:
@@ -1108,7 +1110,7 @@ class _TypeScorer:
         """Forget the cached shape blocks (bounded: they refill with the shapes in use)."""
         self.shape_ids: dict[str, int] = {}           # shape (marked if non-ASCII) -> shape id
         self.n_shapes = 0
-        self.signature_ids: dict[tuple, int] = {}
+        self.signature_ids: dict[int, int] = {}      # signature code -> signature id
         self.signature_shapes: list[tuple[str, bool]] = []   # signature id -> (a shape of it, ASCII?)
         self.n_blocks = self.n_fixed
         self.class_of[:] = -1
@@ -1124,23 +1126,10 @@ class _TypeScorer:
             self._reset_shapes()
         joined = _JOIN.join(texts)
         if joined.isascii() and joined.count(_JOIN) == n_types - 1:
-            rows = self._ascii_rows(joined, kind_ids, kind_names)
+            shapes, lowers, codes = _ascii_forms(joined)
+            rows = self._part_rows(shapes, lowers, kind_ids, kind_names, [(codes, 7, n_types)], False)
         else:
-            # ASCII texts without the separator still go the fast way; the others one by one.
-            fast = np.fromiter(map(str.isascii, texts), dtype=bool, count=n_types)
-            fast &= ~np.fromiter(map(str.__contains__, texts, repeat(_JOIN)), dtype=bool, count=n_types)
-            fast_types, slow_types = np.flatnonzero(fast), np.flatnonzero(~fast)
-            slow_rows = self._general_rows([texts[n] for n in slow_types.tolist()], kind_ids[slow_types],
-                                           kind_names)
-            if fast_types.size:
-                fast_rows = self._ascii_rows(_JOIN.join([texts[n] for n in fast_types.tolist()]),
-                                             kind_ids[fast_types], kind_names)
-                rows = np.zeros((n_types, max(fast_rows.shape[1], slow_rows.shape[1])), dtype=np.int64)
-                rows[fast_types, : fast_rows.shape[1]] = fast_rows
-            else:
-                rows = np.zeros((n_types, slow_rows.shape[1]), dtype=np.int64)
-            rows[slow_types, : slow_rows.shape[1]] = slow_rows
-
+            rows = self._mixed_rows(texts, kind_ids, kind_names)
         flat = out.reshape(n_types, self.width)
         kernels = _feature_kernels()
         if kernels is not None:
@@ -1155,37 +1144,43 @@ class _TypeScorer:
             hits = np.flatnonzero(column)
             flat[hits] += self.blocks[column[hits]]
 
-    def _ascii_rows(self, joined: str, kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
-        """(M, P) store rows of ASCII types whose texts (without the separator) are joined by it."""
-        data = joined.encode("ascii")
-        shapes = data.translate(_ASCII_SHAPES).decode("ascii").split(_JOIN)
-        lower_data = data.lower()
-        lowers = lower_data.decode("ascii").split(_JOIN)
-        codes = np.frombuffer(lower_data, dtype=np.uint8)
-        return self._part_rows(shapes, lowers, codes, 7, kind_ids, kind_names)
-
-    def _general_rows(self, texts: list[str], kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
-        """(M, P) store rows of any types, one text at a time where it matters."""
-        shapes = list(map(str.translate, texts, repeat(_SHAPE_TABLE)))
+    def _mixed_rows(self, texts: list[str], kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
+        """(M, P) store rows of types some of which are not ASCII (or hold the separator, NUL): the
+        ASCII ones still go the fast way, the others one text at a time where it matters."""
+        n_types = len(texts)
+        fast = np.fromiter(map(str.isascii, texts), dtype=bool, count=n_types)
+        fast &= ~np.fromiter(map(str.__contains__, texts, repeat(_JOIN)), dtype=bool, count=n_types)
+        fast_types, slow_types = np.flatnonzero(fast), np.flatnonzero(~fast)
+        slow_texts = [texts[n] for n in slow_types.tolist()]
+        shapes, lowers, codes = _ascii_forms(_JOIN.join([texts[n] for n in fast_types.tolist()])) \
+            if fast_types.size else ([], [], np.zeros(0, dtype=np.uint8))
+        segments = [(codes, 7, fast_types.size)]
+        slow_shapes = list(map(str.translate, slow_texts, repeat(_SHAPE_TABLE)))
         # lower() per text: for non-ASCII text it can depend on the neighbouring characters (final sigma).
-        lowers = list(map(str.lower, texts))
-        codes = np.frombuffer(_JOIN.join(lowers).encode("utf-32-le", "surrogatepass"), dtype=np.uint32)
-        bits = max(int(codes.max()).bit_length(), 1) if codes.size else 1
-        non_ascii = np.flatnonzero(~np.fromiter(map(str.isascii, texts), dtype=bool, count=len(texts))).tolist()
+        slow_lowers = list(map(str.lower, slow_texts))
+        slow_codes = np.frombuffer(_JOIN.join(slow_lowers).encode("utf-32-le", "surrogatepass"), dtype=np.uint32)
+        segments.append((slow_codes, max(int(slow_codes.max()).bit_length(), 1) if slow_codes.size else 1,
+                         slow_types.size))
+        non_ascii = np.flatnonzero(~np.fromiter(map(str.isascii, slow_texts), dtype=bool,
+                                                count=len(slow_texts))).tolist()
         for n in non_ascii:
-            shapes[n] += _NON_ASCII_MARK
-        rows = [self._part_rows(shapes, lowers, codes, bits, kind_ids, kind_names)]
-        for holds, row in self.flag_rows:
-            column = np.zeros((len(texts), 1), dtype=np.int64)
-            column[[n for n in non_ascii if holds(texts[n])]] = row
-            rows.append(column)
-        return np.concatenate(rows, axis=1)
+            slow_shapes[n] += _NON_ASCII_MARK
+        order = np.concatenate([fast_types, slow_types])
+        part = self._part_rows(shapes + slow_shapes, lowers + slow_lowers, kind_ids[order], kind_names, segments,
+                               bool(non_ascii))
+        rows = np.zeros((n_types, part.shape[1] + len(self.flag_rows)), dtype=np.int64)
+        rows[order, : part.shape[1]] = part
+        for column, (holds, row) in enumerate(self.flag_rows, start=part.shape[1]):
+            rows[slow_types[[n for n in non_ascii if holds(slow_texts[n])]], column] = row
+        return rows
 
-    def _part_rows(self, shapes: list[str], lowers: list[str], codes: np.ndarray, bits: int,
-                   kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
-        """(M, P) store rows: shape value, shape rest, lower form, long lower form, affixes."""
+    def _part_rows(self, shapes: list[str], lowers: list[str], kind_ids: np.ndarray, kind_names: list[str],
+                   segments: list[tuple[np.ndarray, int, int]], marked: bool) -> np.ndarray:
+        """(M, P) store rows: shape value, collapsed shape value, shape rest, lower form, long lower form,
+        affixes. ``segments``: consecutive runs of types as (code points of their lower forms joined by
+        one separator each, bits per code point, number of types)."""
         n_types = len(shapes)
-        columns = self._shape_rows(shapes, kind_ids, kind_names)
+        columns = self._shape_rows(shapes, kind_ids, kind_names, marked)
         word = np.fromiter(map(self.word_rows.get, lowers, repeat(0)), dtype=np.int64, count=n_types)
         columns.append(word)
         lengths = np.fromiter(map(len, lowers), dtype=np.int64, count=n_types)
@@ -1198,19 +1193,28 @@ class _TypeScorer:
             columns.append(column)
         rows = np.stack(columns, axis=1)
         if self.affixes is not None:
-            rows = np.concatenate([rows, self.affixes.rows(lowers, codes, bits, lengths)], axis=1)
+            affixes, first = [], 0
+            for codes, bits, count in segments:
+                if count:
+                    affixes.append(self.affixes.rows(lowers[first : first + count], codes, bits,
+                                                     lengths[first : first + count]))
+                first += count
+            rows = np.concatenate([rows] + affixes, axis=1) if len(affixes) == 1 else \
+                np.concatenate([rows, np.concatenate(affixes)], axis=1)
         return rows
 
-    def _shape_rows(self, shapes: list[str], kind_ids: np.ndarray, kind_names: list[str]) -> list[np.ndarray]:
+    def _shape_rows(self, shapes: list[str], kind_ids: np.ndarray, kind_names: list[str],
+                    marked: bool) -> list[np.ndarray]:
         """(M,) store rows of each type's shape value, collapsed shape value, and the rest of its shape
-        features with its kind (kind, length, flags: `_add_shapes`)."""
+        features with its kind (kind, length, flags: `_add_shapes`). ``marked``: some shapes may carry
+        the non-ASCII mark."""
         n_types = len(shapes)
         shape_ids = self.shape_ids
         ids = np.fromiter(map(shape_ids.get, shapes, repeat(-1)), dtype=np.int64, count=n_types)
         new = np.flatnonzero(ids < 0)
         if new.size:
             new_shapes = [shapes[n] for n in new.tolist()]
-            self._add_shapes(list(dict.fromkeys(new_shapes)))
+            self._add_shapes(list(dict.fromkeys(new_shapes)), marked)
             ids[new] = np.fromiter(map(shape_ids.__getitem__, new_shapes), dtype=np.int64, count=new.size)
         if len(kind_names) > self.class_of.shape[1]:
             self.class_of = _grown_to(self.class_of, self.class_of.shape[0], len(kind_names), -1)
@@ -1224,14 +1228,8 @@ class _TypeScorer:
             rest[missing] = self.class_of[signatures[missing], kind_ids[missing]]
         return [self.value_of[ids], self.collapsed_of[ids], rest]
 
-    def _add_shapes(self, new_shapes: list[str]) -> None:
-        """Register distinct new shapes: their value rows and their signatures.
-
-        A shape's features other than its values (the shape flags, the ASCII case flags, the length
-        bucket) follow from its signature: the set of its characters (each shape flag tests for a
-        character class, or for the first character), its first character, its length bucket, whether
-        it is ASCII and, for ASCII, str.istitle of it (the only flag that depends on the order). Hosts
-        of every name length or ids of every hex digit pattern share a handful of signatures."""
+    def _add_shapes(self, new_shapes: list[str], marked: bool) -> None:
+        """Register distinct new shapes: their value rows and their signatures (`_shape_signatures`)."""
         first = self.n_shapes
         self.n_shapes += len(new_shapes)
         self.shape_ids.update(zip(new_shapes, range(first, self.n_shapes)))
@@ -1239,30 +1237,30 @@ class _TypeScorer:
             size = 2 * self.n_shapes
             self.value_of, self.collapsed_of, self.signature_of = (
                 _grown_to(array, size, None, 0) for array in (self.value_of, self.collapsed_of, self.signature_of))
-        bare = [shape.removesuffix(_NON_ASCII_MARK) for shape in new_shapes]
-        cut = self.cut
+        if marked:
+            is_ascii = ~np.fromiter(map(str.endswith, new_shapes, repeat(_NON_ASCII_MARK)), dtype=bool,
+                                    count=len(new_shapes))
+            bare = [shape.removesuffix(_NON_ASCII_MARK) for shape in new_shapes]
+        else:
+            is_ascii, bare = np.ones(len(new_shapes), dtype=bool), new_shapes
+        head = itemgetter(slice(self.cut))
         if self.shape_value_rows:
-            value_rows = self.shape_value_rows
-            self.value_of[first : self.n_shapes] = [value_rows.get(shape[:cut], 0) for shape in bare]
+            self.value_of[first : self.n_shapes] = np.fromiter(
+                map(self.shape_value_rows.get, map(head, bare), repeat(0)), dtype=np.int64, count=len(bare))
         if self.collapsed_value_rows:
-            collapsed_rows = self.collapsed_value_rows
-            self.collapsed_of[first : self.n_shapes] = [collapsed_rows.get(collapsed[:cut], 0)
-                                                        for collapsed in _collapsed(bare)]
-        bounds = self.spec.length_bounds if self.use["length"] else ()
-        buckets = np.searchsorted(np.array(bounds, dtype=np.int64),
-                                  np.fromiter(map(len, bare), dtype=np.int64, count=len(bare))).tolist()
-        signature_ids = self.signature_ids
+            self.collapsed_of[first : self.n_shapes] = np.fromiter(
+                map(self.collapsed_value_rows.get, map(head, _collapsed(bare)), repeat(0)), dtype=np.int64,
+                count=len(bare))
+        codes = _shape_signatures(bare, is_ascii, self.spec.length_bounds if self.use["length"] else ())
+        distinct, first_of, signature_of_shape = np.unique(codes, return_index=True, return_inverse=True)
         numbers = []
-        for shape, marked, bucket in zip(bare, new_shapes, buckets):
-            is_ascii = not marked.endswith(_NON_ASCII_MARK)
-            signature = (frozenset(shape), shape[:1], bucket, is_ascii and shape.replace("d", "0").istitle(),
-                         is_ascii)
-            number = signature_ids.get(signature)
+        for code, n in zip(distinct.tolist(), first_of.tolist()):     # a handful per batch
+            number = self.signature_ids.get(code)
             if number is None:
-                number = signature_ids[signature] = len(self.signature_shapes)
-                self.signature_shapes.append((shape, is_ascii))
+                number = self.signature_ids[code] = len(self.signature_shapes)
+                self.signature_shapes.append((bare[n], bool(is_ascii[n])))   # any shape of it will do
             numbers.append(number)
-        self.signature_of[first : self.n_shapes] = numbers
+        self.signature_of[first : self.n_shapes] = np.array(numbers, dtype=np.int64)[signature_of_shape.reshape(-1)]
         if len(self.signature_shapes) > self.class_of.shape[0]:
             self.class_of = _grown_to(self.class_of, 2 * len(self.signature_shapes), self.class_of.shape[1], -1)
 
@@ -1290,8 +1288,9 @@ class _TypeScorer:
         """Append the blocks of these (slot, id) pair lists to the store; the row of the first."""
         first, needed = self.n_blocks, self.n_blocks + len(pair_lists)
         if needed > self.blocks.shape[0]:
-            self.blocks = _grown_to(self.blocks, 2 * needed, None, 0.0)
-            self.slot_masks = _grown_to(self.slot_masks, 2 * needed, None, 0)
+            # Little at a time: what grows is the cached part, a few hundred blocks beside thousands fixed.
+            self.blocks = _grown_to(self.blocks, needed + 1024, None, 0.0)
+            self.slot_masks = _grown_to(self.slot_masks, needed + 1024, None, 0)
         if pair_lists:
             blocks = _block_sums(self.weights, self.n_slots, pair_lists)           # (U, K, L)
             self.blocks[first:needed] = blocks.reshape(len(pair_lists), self.width)
@@ -1302,6 +1301,53 @@ class _TypeScorer:
                 self.slot_masks[first:needed] = -1
         self.n_blocks = needed
         return first
+
+
+def _ascii_forms(joined: str) -> tuple[list[str], list[str], np.ndarray]:
+    """Word shapes, lower forms and the lower forms' bytes (separators kept) of ASCII texts joined by the
+    separator (which they do not hold): one C-level pass each instead of one call per text."""
+    data = joined.encode("ascii")
+    lower_data = data.lower()
+    return (data.translate(_ASCII_SHAPES).decode("ascii").split(_JOIN), lower_data.decode("ascii").split(_JOIN),
+            np.frombuffer(lower_data, dtype=np.uint8))
+
+
+# The characters the shape flags test for (SHAPE_FLAGS); any other character counts as one class more.
+_FLAG_CHARS = "dXx-._/:@="
+_OTHER_CHAR = 1 << len(_FLAG_CHARS)
+_CHAR_BITS = np.array([1 << _FLAG_CHARS.index(chr(code)) if chr(code) in _FLAG_CHARS else _OTHER_CHAR
+                       for code in range(128)] + [_OTHER_CHAR], dtype=np.int64)      # (129,), 128: non-ASCII
+
+
+def _shape_signatures(shapes: list[str], is_ascii: np.ndarray, length_bounds: Sequence[int]) -> np.ndarray:
+    """(U,) int64 signature code of each shape: shapes with one code have the same shape flags, length
+    bucket and, if ASCII, case flags.
+
+    The code packs the set of flag characters present (and whether any other is: `all_digit` needs
+    it), whether the first is "X" (`initial_upper`), whether the shape is ASCII, the length bucket
+    and, for ASCII, str.istitle of the shape with digits as "0" (the case flags of an ASCII text follow
+    from its shape: X upper, x lower, the rest uncased; upper and lower need only the set, title also
+    the order: no cased character before an "X", one before each "x", and at least one cased).
+    """
+    lengths = np.fromiter(map(len, shapes), dtype=np.int64, count=len(shapes))
+    codes = np.frombuffer("".join(shapes).encode("utf-32-le", "surrogatepass"), dtype=np.uint32)
+    signatures = np.zeros(len(shapes), dtype=np.int64)
+    nonempty = np.flatnonzero(lengths)
+    if nonempty.size:
+        starts = (np.cumsum(lengths) - lengths)[nonempty]
+        present = np.bitwise_or.reduceat(_CHAR_BITS[np.minimum(codes, 128)], starts)
+        upper, lower = codes == ord("X"), codes == ord("x")
+        cased_before = np.zeros(codes.size, dtype=bool)
+        cased_before[1:] = upper[:-1] | lower[:-1]
+        cased_before[starts] = False
+        broken = np.logical_or.reduceat((upper & cased_before) | (lower & ~cased_before), starts)
+        cased = (present & ((1 << _FLAG_CHARS.index("X")) | (1 << _FLAG_CHARS.index("x")))) != 0
+        title = cased & ~broken & is_ascii[nonempty]
+        flags_bits = len(_FLAG_CHARS) + 1
+        signatures[nonempty] = present | (upper[starts].astype(np.int64) << flags_bits) | \
+            (title.astype(np.int64) << (flags_bits + 1))
+    buckets = np.searchsorted(np.asarray(length_bounds, dtype=np.int64), lengths)   # first bound >= length
+    return signatures | (is_ascii.astype(np.int64) << (len(_FLAG_CHARS) + 3)) | (buckets << (len(_FLAG_CHARS) + 4))
 
 
 def _grown_to(array: np.ndarray, rows: int, columns: int | None, fill) -> np.ndarray:
@@ -1400,9 +1446,10 @@ class EmissionScorer:
         if len(kinds) != n:
             raise DataError(f"{n} tokens but {len(kinds)} kinds")
         rows = np.fromiter(map(self.row_of_text.get, texts, repeat(self._BOUNDARY)), dtype=np.int64, count=n)
-        # Kinds compared as objects: building the object array and comparing (equal strings, mostly the
-        # very same objects) costs about half of a dict lookup per token. Unused rows hold None.
-        other = np.flatnonzero(self.kind_of_row[rows] != np.array(kinds, dtype=object))  # new, or another kind
+        # Kinds compared as objects: building the object array (none if ``kinds`` is one already) and
+        # comparing (equal strings, mostly the very same objects) costs about half of a dict lookup per
+        # token. Unused rows hold None.
+        other = np.flatnonzero(self.kind_of_row[rows] != np.asarray(kinds, dtype=object))  # new, or another kind
         if not other.size:
             return rows
         if self.n_rows + other.size > self.cache_size:
