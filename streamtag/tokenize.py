@@ -388,9 +388,9 @@ class TokenBatch(NamedTuple):
 _MAX_CACHED_PIECE = 256  # longer pieces are tokenized but not cached: a log of long unique runs
 # (base64 blobs, minified JSON) must not fill memory, and such pieces rarely repeat anyway.
 _ROWS_PER_PIECE = 8  # token rows kept per cached piece on average at most (service logs: about 2)
-_ENTRY = np.dtype("<i4")  # a cache entry is two of these as bytes: first token row, number of rows
-_MISSING = np.array([0, -1], dtype=_ENTRY).tobytes()  # entry of a piece not in the cache
-_SPACE = ord(" ")
+_ENTRY = np.dtype("<i4")  # a cache entry is three of these as bytes: first token row, number of rows,
+_ENTRY_FIELDS = 3  # and the piece's length (so a batch's piece offsets need no pass over its text)
+_MISSING = np.array([0, -1, 0], dtype=_ENTRY).tobytes()  # entry of a piece not in the cache
 _get_lastindex = attrgetter("lastindex")
 _group = re.Match.group
 _start = re.Match.start
@@ -401,9 +401,11 @@ class BatchTokenizer:
     space-separated piece once and reusing it while it stays in the cache.
 
     The cache is a table of token rows (text, kind, start and end relative to the piece) and a dict
-    from piece to its first row and number of rows, packed as 8 bytes so that a whole batch's
-    look-ups join into one numpy array. A batch runs the pattern once over the pieces not seen yet
-    and gathers every token's row with numpy: no Python step per token or per cached piece.
+    from piece to its first row, number of rows and length, packed as 12 bytes so that a whole
+    batch's look-ups join into one numpy array (the lengths give the pieces' offsets). A batch sends
+    the pieces not seen yet through the compiled scanner, and those it is unsure of through the
+    pattern (see `_tokenize_pieces`), then gathers every token's row with numpy: no Python step per
+    token or per cached piece.
     """
 
     def __init__(self, cache_size: int = 100_000):
@@ -448,7 +450,7 @@ class BatchTokenizer:
         # of them (a run of k spaces leaves k - 1 empty pieces), whatever else the lines hold.
         pieces = joined.split(" ")
         found = b"".join(map(self._entries.get, pieces, repeat(_MISSING)))
-        entries = np.frombuffer(found, dtype=_ENTRY).reshape(len(pieces), 2)  # (P, 2)
+        entries = np.frombuffer(found, dtype=_ENTRY).reshape(len(pieces), _ENTRY_FIELDS)  # (P, 3)
         missing = entries[:, 1] < 0
         n_missing = int(np.count_nonzero(missing))
         kept_rows = self._n_rows
@@ -457,7 +459,7 @@ class BatchTokenizer:
             kept_rows = self._add_missing(pieces, entries, missing)
         self.misses += n_missing
         self.hits += len(pieces) - n_missing
-        batch = self._gather(lines, joined, entries)
+        batch = self._gather(lines, entries)
         if self._n_rows > kept_rows:  # let go of this batch's pieces that are not cached
             self._texts[kept_rows : self._n_rows] = None
             self._kinds[kept_rows : self._n_rows] = None
@@ -466,13 +468,14 @@ class BatchTokenizer:
 
     def _add_missing(self, pieces: list[str], entries: np.ndarray, missing: np.ndarray) -> int:
         """Tokenize the pieces not in the cache, add their rows and fill in their ``entries``
-        (P, 2); return the number of rows that stay in the cache after this batch."""
+        (P, 3); return the number of rows that stay in the cache after this batch."""
         missing_pieces = list(compress(pieces, missing.tolist()))
         distinct = list(dict.fromkeys(missing_pieces))
         short = [piece for piece in distinct if len(piece) <= _MAX_CACHED_PIECE]
         if len(short) < len(distinct):  # cacheable pieces first, so the others can be cut off after
             distinct = short + [piece for piece in distinct if len(piece) > _MAX_CACHED_PIECE]
-        texts, kinds, starts, ends, n_tokens = _tokenize_pieces(distinct)
+        piece_lengths = np.fromiter(map(len, distinct), dtype=np.int64, count=len(distinct))  # (D,)
+        texts, kinds, starts, ends, n_tokens = _tokenize_pieces(distinct, piece_lengths)
         n_rows = len(texts)
         n_short_rows = int(n_tokens[: len(short)].sum())
         # Clearing the whole cache when it is full keeps memory flat at the cost of one batch of
@@ -496,13 +499,14 @@ class BatchTokenizer:
         self._starts[first_row : first_row + n_rows] = starts
         self._ends[first_row : first_row + n_rows] = ends
         self._n_rows += n_rows
-        new_entries = np.empty((len(distinct), 2), dtype=_ENTRY)  # (D, 2)
+        new_entries = np.empty((len(distinct), _ENTRY_FIELDS), dtype=_ENTRY)  # (D, 3)
         new_entries[:, 0] = first_row + np.cumsum(n_tokens) - n_tokens
         new_entries[:, 1] = n_tokens
-        # Viewed as 8-byte void items, tolist gives one bytes object per entry (nothing stripped).
-        new = dict(zip(distinct, new_entries.view(f"V{2 * _ENTRY.itemsize}").ravel().tolist()))
+        new_entries[:, 2] = piece_lengths
+        # Viewed as 12-byte void items, tolist gives one bytes object per entry (nothing stripped).
+        new = dict(zip(distinct, new_entries.view(f"V{_ENTRY_FIELDS * _ENTRY.itemsize}").ravel().tolist()))
         filled = b"".join(map(new.__getitem__, missing_pieces))
-        entries[missing] = np.frombuffer(filled, dtype=_ENTRY).reshape(-1, 2)
+        entries[missing] = np.frombuffer(filled, dtype=_ENTRY).reshape(-1, _ENTRY_FIELDS)
         self._entries.update(islice(new.items(), n_kept))
         return first_row + n_kept_rows
 
@@ -516,12 +520,12 @@ class BatchTokenizer:
             self._starts = _grown(self._starts, size)
             self._ends = _grown(self._ends, size)
 
-    def _gather(self, lines: list[str], joined: str, entries: np.ndarray) -> TokenBatch:
-        """The batch from the pieces' entries (P, 2): their token rows, offsets shifted to the line."""
+    def _gather(self, lines: list[str], entries: np.ndarray) -> TokenBatch:
+        """The batch from the pieces' entries (P, 3): their token rows, offsets shifted to the line."""
         n_tokens = entries[:, 1]  # (P,)
         ends = np.cumsum(n_tokens, dtype=np.int64)
         rows = np.arange(ends[-1]) + np.repeat(entries[:, 0] - (ends - n_tokens), n_tokens)  # (N,)
-        piece_starts = _piece_starts(joined)  # (P,) in joined
+        piece_starts = _starts_of(entries[:, 2])  # (P,) in the batch's lines joined by ' '
         line_lengths = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
         line_starts = np.cumsum(line_lengths + 1) - (line_lengths + 1)  # (B,) in joined
         first_piece = np.searchsorted(piece_starts, line_starts)  # (B,) every line has a piece
@@ -550,9 +554,43 @@ def _grown(array: np.ndarray, size: int) -> np.ndarray:
     return bigger
 
 
-def _tokenize_pieces(pieces: list[str]) -> tuple[list[str], list[str], np.ndarray, np.ndarray, np.ndarray]:
-    """Tokens of ``pieces`` (none containing ' ') from one finditer over them joined by ' ': texts
-    (n) and kinds (n), starts and ends (n,) relative to their piece, tokens per piece (P,)."""
+def _tokenize_pieces(pieces: list[str], lengths: np.ndarray) -> tuple[list, list, np.ndarray, np.ndarray, np.ndarray]:
+    """Tokens of ``pieces`` (none containing ' ', lengths (P,)): texts (n) and kinds (n), starts and
+    ends (n,) relative to their piece, tokens per piece (P,).
+
+    The compiled scanner (`scan_kernels.scan`) takes the pieces it is sure of, the pattern the others
+    (or all of them, if numba is not available). The scanner is tested to give exactly the pattern's
+    tokens on every piece it does not leave unsure; the pattern stays the reference.
+    """
+    scan = _scanner()
+    if scan is None:
+        return _match_pieces(pieces, lengths)
+    joined = " ".join(pieces)
+    # A writable copy: numba compiles a separate version of the kernel for read-only arrays.
+    code_points = np.frombuffer(bytearray(joined.encode("utf-32-le", "surrogatepass")), dtype=np.uint32)
+    starts, ends, kind_codes, unsure = scan(code_points)  # (n,) in joined; (P,)
+    piece_starts = _starts_of(lengths)  # (P,) in joined
+    texts = np.fromiter(map(joined.__getitem__, map(slice, starts.tolist(), ends.tolist())), dtype=object,
+                        count=len(starts))
+    kinds = _KIND_NAMES.take(kind_codes)
+    if unsure.any():
+        unsure_at = np.flatnonzero(unsure)
+        more = _match_pieces(list(compress(pieces, unsure.tolist())), lengths[unsure_at])
+        shift = np.repeat(piece_starts[unsure_at], more[4])
+        # Both parts are in joined order; one stable sort by start puts every piece's tokens together.
+        order = np.argsort(np.concatenate((starts, more[2] + shift)), kind="stable")
+        texts = np.concatenate((texts, np.fromiter(more[0], dtype=object, count=len(more[0])))).take(order)
+        kinds = np.concatenate((kinds, np.fromiter(more[1], dtype=object, count=len(more[1])))).take(order)
+        starts = np.concatenate((starts, more[2] + shift)).take(order)
+        ends = np.concatenate((ends, more[3] + shift)).take(order)
+    token_piece = np.searchsorted(piece_starts, starts, side="right") - 1  # (n,)
+    shift = piece_starts[token_piece]
+    return texts, kinds, starts - shift, ends - shift, np.bincount(token_piece, minlength=len(pieces))
+
+
+def _match_pieces(pieces: list[str], lengths: np.ndarray) -> tuple[list[str], list[str], np.ndarray, np.ndarray, np.ndarray]:
+    """Tokens of ``pieces`` (none containing ' ', lengths (P,)) from one finditer of the pattern over
+    them joined by ' '; the same results as `_tokenize_pieces`."""
     joined = " ".join(pieces)
     texts: list[str] = []
     kinds: list[str] = []
@@ -570,19 +608,33 @@ def _tokenize_pieces(pieces: list[str]) -> tuple[list[str], list[str], np.ndarra
             break
     token_starts = np.concatenate(starts)  # (n,) in joined
     token_ends = token_starts + np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
-    piece_starts = _piece_starts(joined)  # (P,) in joined
+    piece_starts = _starts_of(lengths)  # (P,) in joined
     token_piece = np.searchsorted(piece_starts, token_starts, side="right") - 1  # (n,)
     shift = piece_starts[token_piece]
     return texts, kinds, token_starts - shift, token_ends - shift, np.bincount(token_piece, minlength=len(pieces))
 
 
-def _piece_starts(joined: str) -> np.ndarray:
-    """(P,) int64 offsets of the pieces of ``joined.split(' ')`` in ``joined``."""
-    # UTF-32 gives one code unit per character; surrogatepass keeps lone surrogates (from
-    # surrogateescape decoding) countable instead of raising.
-    code_points = np.frombuffer(joined.encode("utf-32-le", "surrogatepass"), dtype=np.uint32)
-    spaces = np.flatnonzero(code_points == _SPACE)
-    starts = np.empty(len(spaces) + 1, dtype=np.int64)
-    starts[0] = 0
-    starts[1:] = spaces + 1
-    return starts
+def _starts_of(lengths: np.ndarray) -> np.ndarray:
+    """(P,) int64 offsets of pieces of these lengths (P,) in the pieces joined by ' '."""
+    steps = lengths.astype(np.int64) + 1
+    return np.cumsum(steps) - steps
+
+
+_KIND_NAMES = np.array(KINDS, dtype=object)  # kind code (index into KINDS) -> kind
+USE_SCANNER = True  # False: every new piece goes through the pattern (for tests and comparisons)
+_scan = None  # scan_kernels.scan once loaded; False if numba is not available
+
+
+def _scanner():
+    """The compiled scanner (`scan_kernels.scan`), imported on first use (numba takes a while to
+    load, which commands that never tokenize a batch should not pay); None to use the pattern alone."""
+    global _scan
+    if not USE_SCANNER:
+        return None
+    if _scan is None:
+        try:
+            from streamtag.scan_kernels import scan
+        except (ImportError, OSError):  # numba missing, or its compiler library fails to load
+            scan = False
+        _scan = scan
+    return _scan or None

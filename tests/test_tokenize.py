@@ -777,3 +777,119 @@ def test_fast_paths_change_nothing_on_sample_lines():
 def test_fast_paths_change_nothing_on_log_like_text(line):
     # Same reference as above, on hypothesis-built text around the fast paths' edges.
     assert _tokens(line) == _tokens_without_fast_paths(line)
+
+
+# ------------------------------------------------------------------------------------------------
+# batches: the compiled scanner is an optimisation only
+# ------------------------------------------------------------------------------------------------
+# BatchTokenizer sends the pieces it has not cached to the compiled scanner (scan_kernels, numba)
+# and the pieces the scanner leaves unsure to the pattern. The reference everywhere below is
+# tokenize(line), the pattern alone, which the tests above judge against RFCs and reference
+# libraries; the batch must equal it line by line with the scanner on and off.
+
+import streamtag.tokenize as tokenize_module  # noqa: E402
+from streamtag.tokenize import BatchTokenizer  # noqa: E402
+
+
+@pytest.fixture(params=[True, False], ids=["scanner", "pattern-only"])
+def scanner(request, monkeypatch):
+    monkeypatch.setattr(tokenize_module, "USE_SCANNER", request.param)
+    return request.param
+
+
+def _batch_per_line(tokenizer: BatchTokenizer, lines: list[str]) -> list[TokenList]:
+    return tokenizer.tokenize_lines(lines).per_line()
+
+
+def test_batches_of_the_sample_log_equal_tokenize(scanner):
+    # Reference: tokenize per line. Batches of 64 through a 500-piece cache that fills and clears.
+    lines = SAMPLE.read_text(encoding="utf-8").splitlines()
+    tokenizer = BatchTokenizer(cache_size=500)
+    for i in range(0, len(lines), 64):
+        batch = lines[i : i + 64]
+        assert _batch_per_line(tokenizer, batch) == [tokenize(line) for line in batch]
+    assert tokenizer.misses > 0
+
+
+# Pieces the scanner takes (timestamps, integers, IPv4 with punctuation, key=value) next to pieces it
+# leaves to the pattern (IPv6, e-mail, URL, non-ASCII, tab): the documentation addresses of
+# RFC 5737 section 3 and RFC 3849, the example names of RFC 2606, RFC 3339 time stamps (section 5.8
+# example "1985-04-12T23:20:50.52Z", from memory).
+MIXED_PIECES = [
+    "04:49:37", "2025-02-15T12:27:21.510905Z", "1985-04-12T23:20:50.52Z", "23366", "198.51.100.7,",
+    '"203.0.113.194"}', "192.0.2.1:443:", "pid=25783", "dur=15682ms", "ts=2025-02-15T12:27:21Z",
+    "[03/Feb/2025:11:00:14", "2001:db8::1", "2001:db8:0:0:1:0:0:1", "<ann@example.com>:",
+    "http://www.example.org/a?b=c", "café=1", "x\t=2", "\u00e9t\u00e9", "😀1", "\udcff", "", "::",
+    "0x1F", "v1.2.3", "web-03.example.net.", "/var/log/x.log.", "f81d4fae-7dec-11d0-a765-00a0c91e6bf6",
+]
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.lists(st.sampled_from(MIXED_PIECES + LOG_FRAGMENTS + FAST_PATH_EDGES), max_size=12)
+                .map(" ".join), min_size=1, max_size=8), st.sampled_from([0, 4, 100_000]))
+def test_property_batches_mixing_scanned_and_unsure_pieces(lines, cache_size):
+    # Reference: tokenize per line, with the scanner and without it (hypothesis builds the lines;
+    # a cache of 0 or 4 pieces keeps most pieces new, so they go through the scanner each time).
+    for use_scanner in (True, False):
+        tokenize_module.USE_SCANNER = use_scanner
+        try:
+            tokenizer = BatchTokenizer(cache_size)
+            for _ in range(2):  # the second time, cached and new pieces meet in one batch
+                assert _batch_per_line(tokenizer, lines) == [tokenize(line) for line in lines]
+        finally:
+            tokenize_module.USE_SCANNER = True
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.text(max_size=30), min_size=1, max_size=5))
+def test_property_batches_of_arbitrary_text_with_the_scanner(lines):
+    # Reference: tokenize per line, on hypothesis' default text (all planes, control characters):
+    # whatever the scanner leaves unsure, the offsets must still be counted in code points.
+    assert _batch_per_line(BatchTokenizer(), lines) == [tokenize(line) for line in lines]
+
+
+def test_mixed_batch_kinds_agree_with_reference_libraries(scanner):
+    # Reference: tokenize per line, and for address and time tokens Python's ipaddress (RFC 4291
+    # and RFC 791 text forms) and datetime (RFC 3339 section 5.6 as ISO 8601 extended format).
+    lines = [" ".join(MIXED_PIECES[i:] + MIXED_PIECES[:i]) for i in range(len(MIXED_PIECES))]
+    batch = BatchTokenizer().tokenize_lines(lines)
+    assert batch.per_line() == [tokenize(line) for line in lines]
+    kinds = dict(zip(batch.texts, batch.kinds))
+    for address in ("198.51.100.7", "203.0.113.194", "2001:db8::1", "2001:db8:0:0:1:0:0:1"):
+        expected = "ipv4" if ipaddress.ip_address(address).version == 4 else "ipv6"
+        assert kinds[address] == expected, address
+    assert kinds["192.0.2.1:443"] == "ipv4"  # address with port, RFC 3986 section 3.2.3 authority form
+    for stamp in ("2025-02-15T12:27:21.510905Z", "1985-04-12T23:20:50.52Z", "2025-02-15T12:27:21Z"):
+        datetime.datetime.fromisoformat(stamp.replace("Z", "+00:00"))  # a valid RFC 3339 time (datetime)
+        assert kinds[stamp] == "timestamp", stamp
+    assert kinds["04:49:37"] == "timestamp"  # RFC 3339 section 5.6 partial-time
+    assert kinds["23366"] == kinds["25783"] == "number"  # common practice: a run of digits is a number
+
+
+def test_scanner_takes_the_common_new_pieces(monkeypatch):
+    # Design check (DEVELOPERS.md, tokenize.py: the batch path equals tokenize): timestamps, numbers,
+    # IPv4 addresses with punctuation and key=value pieces never reach the pattern; an IPv6 address
+    # (RFC 3849 documentation prefix) does. The tokens still equal tokenize per line.
+    sent_to_pattern = []
+    original = tokenize_module._match_pieces
+
+    def spy(pieces, lengths):
+        sent_to_pattern.extend(pieces)
+        return original(pieces, lengths)
+
+    monkeypatch.setattr(tokenize_module, "_match_pieces", spy)
+    if tokenize_module._scanner() is None:
+        pytest.skip("numba is not available: every piece goes through the pattern")
+    lines = ['04:49:37 2025-02-15T12:27:21.510905Z 23366 "198.51.100.7"} pid=25783 dur=15682ms',
+             "2001:db8::1 ts=2025-02-15T12:27:21Z [03/Feb/2025:11:00:14"]
+    assert _batch_per_line(BatchTokenizer(), lines) == [tokenize(line) for line in lines]
+    assert sent_to_pattern == ["2001:db8::1"]
+
+
+def test_batch_without_numba_uses_the_pattern(monkeypatch):
+    # Reference: tokenize per line. A process where numba cannot be imported (the loader found
+    # nothing) still tokenizes every batch, with the pattern alone.
+    monkeypatch.setattr(tokenize_module, "_scan", False)
+    assert tokenize_module._scanner() is None
+    lines = [" ".join(MIXED_PIECES), "plain words only", ""]
+    assert _batch_per_line(BatchTokenizer(), lines) == [tokenize(line) for line in lines]
