@@ -14,7 +14,7 @@ batch of short ones costs no memory.
 Forbidden BIO moves are -inf in the masked matrices (see `apply_mask`); trainable parameters never hold
 -inf. No function here produces NaN for -inf inputs.
 
-`viterbi` and `decode` (the tagging hot path) run their per-step loops in compiled kernels
+`viterbi`, `decode` and `nbest` (the tagging hot path) run their loops in compiled kernels
 (`streamtag.crf_kernels`, numba) when numba can be imported; the numpy code here is the reference they
 are tested against and the fallback (set `USE_KERNELS = False` to force it).
 """
@@ -26,7 +26,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-# Use the compiled kernels of streamtag.crf_kernels for `viterbi` and `decode` if numba imports.
+# Use the compiled kernels of streamtag.crf_kernels for `viterbi`, `decode` and `nbest` if numba imports.
 USE_KERNELS = True
 _kernels = None  # the loaded kernels; False once numba turned out to be unavailable
 _loaded: dict = {}  # crf_kernels loader name -> what it returned, or False (see `compiled`)
@@ -55,6 +55,88 @@ class ForwardBackward(NamedTuple):
     log_beta: np.ndarray
     log_z: np.ndarray
     lengths: np.ndarray
+
+    def log_alpha_at(self, tokens: np.ndarray, labels: np.ndarray) -> np.ndarray:
+        """log_alpha[tokens, labels] (S,), a new array; tokens and labels (S,) ints."""
+        return self.log_alpha[tokens, labels]
+
+    def log_beta_rows(self, tokens: np.ndarray) -> np.ndarray:
+        """log_beta[tokens] (S, L), a new array; tokens (S,) ints."""
+        return self.log_beta[tokens]
+
+
+class ScaledForwardBackward:
+    """What `decode` returns as its forward-backward: `ForwardBackward`'s attributes and methods, kept
+    in scaled form until asked for.
+
+    log_z (B,) and lengths (B,) are plain attributes. log_alpha (N, L) = log(alpha) + alpha_shift[:, None]
+    and likewise log_beta are computed on first access (a log of every entry, which the tagger's hot
+    path avoids) and kept; `log_alpha_at` and `log_beta_rows` take the log of the entries asked for
+    only. Tokens of sequences redone in log space (`exact_tokens` (M,), ascending) have their exact
+    rows in `exact_alpha`, `exact_beta` (M, L) instead.
+    """
+
+    __slots__ = ("alpha", "alpha_shift", "beta", "beta_shift", "log_z", "lengths", "exact_tokens",
+                 "exact_alpha", "exact_beta", "_log_alpha", "_log_beta")
+
+    def __init__(self, alpha, alpha_shift, beta, beta_shift, log_z, lengths, exact_tokens=None, exact_alpha=None,
+                 exact_beta=None):
+        self.alpha, self.alpha_shift, self.beta, self.beta_shift = alpha, alpha_shift, beta, beta_shift
+        self.log_z, self.lengths = log_z, lengths
+        self.exact_tokens = np.zeros(0, dtype=np.int64) if exact_tokens is None else exact_tokens
+        n_labels = alpha.shape[1]
+        self.exact_alpha = np.zeros((0, n_labels)) if exact_alpha is None else exact_alpha
+        self.exact_beta = np.zeros((0, n_labels)) if exact_beta is None else exact_beta
+        self._log_alpha = self._log_beta = None
+
+    @property
+    def log_alpha(self) -> np.ndarray:
+        if self._log_alpha is None:
+            self._log_alpha = self._materialise(self.alpha, self.alpha_shift, self.exact_alpha)
+        return self._log_alpha
+
+    @property
+    def log_beta(self) -> np.ndarray:
+        if self._log_beta is None:
+            self._log_beta = self._materialise(self.beta, self.beta_shift, self.exact_beta)
+        return self._log_beta
+
+    def _materialise(self, scaled, shift, exact) -> np.ndarray:
+        with np.errstate(divide="ignore"):  # an exact zero is a forbidden state: -inf
+            values = np.log(scaled)
+        values += shift[:, None]
+        values[self.exact_tokens] = exact
+        return values
+
+    def log_alpha_at(self, tokens: np.ndarray, labels: np.ndarray) -> np.ndarray:
+        """log_alpha[tokens, labels] (S,), a new array, computing only those entries."""
+        if self._log_alpha is not None:
+            return self._log_alpha[tokens, labels]
+        with np.errstate(divide="ignore"):
+            values = np.log(self.alpha[tokens, labels])
+        values += self.alpha_shift[tokens]
+        if self.exact_tokens.size:
+            where, found = self._exact_rows(tokens)
+            values[found] = self.exact_alpha[where[found], labels[found]]
+        return values
+
+    def log_beta_rows(self, tokens: np.ndarray) -> np.ndarray:
+        """log_beta[tokens] (S, L), a new array, computing only those rows."""
+        if self._log_beta is not None:
+            return self._log_beta[tokens]
+        with np.errstate(divide="ignore"):
+            values = np.log(self.beta[tokens])
+        values += self.beta_shift[tokens][:, None]
+        if self.exact_tokens.size:
+            where, found = self._exact_rows(tokens)
+            values[found] = self.exact_beta[where[found]]
+        return values
+
+    def _exact_rows(self, tokens: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(S,) row in the exact arrays of each token, and (S,) bool whether it has one."""
+        where = np.searchsorted(self.exact_tokens, tokens)
+        where = np.minimum(where, self.exact_tokens.size - 1)
+        return where, self.exact_tokens[where] == tokens
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -462,7 +544,7 @@ class Decoded(NamedTuple):
 
     labels: np.ndarray  # (N,) int64 Viterbi path
     scores: np.ndarray  # (B,) Viterbi path scores
-    fb: ForwardBackward  # for span probabilities and log Z
+    fb: ForwardBackward | ScaledForwardBackward  # for span probabilities and log Z (same attributes)
     confidence: np.ndarray  # (N,) marginal probability of each token's decoded label
 
 
@@ -496,32 +578,40 @@ def _decode_numpy(E: np.ndarray, pk: _Packing, trans, start, end) -> Decoded:
 
 
 def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, end) -> Decoded:
-    """`decode` with the compiled kernels: scaled forward-backward, exact redo of suspect sequences."""
-    row_peaks, decode_flat, _, exact_forward_backward = kernels
+    """`decode` with the compiled kernels: scaled forward-backward, exact redo of suspect sequences.
+
+    The kernel gives each token's confidence; logs of alpha and beta are left to `ScaledForwardBackward`
+    (taken only for the entries a caller asks for).
+    """
+    row_peaks, decode_flat, _, exact_forward_backward = kernels[:4]
     peak = row_peaks(E)
     with np.errstate(invalid="ignore"):  # a token without a finite emission: the kernel flags it
         emission_exp = np.exp(E - peak[:, None])
-    labels, scores, log_alpha, alpha_shift, log_beta, beta_shift, log_z, suspect = decode_flat(
+    labels, scores, alpha, alpha_shift, beta, beta_shift, log_z, suspect, confidence = decode_flat(
         E, emission_exp, peak, lengths, trans, start, end)
-    # The kernel returns scaled values; their log is taken here in one vectorised pass (numpy's SIMD
-    # log measured about 10x faster than a scalar log per entry in the kernel). Exact zeros give
-    # -inf; suspect sequences are overwritten below.
-    with np.errstate(divide="ignore", invalid="ignore"):
-        np.log(log_alpha, out=log_alpha)
-        log_alpha += alpha_shift[:, None]
-        np.log(log_beta, out=log_beta)
-        log_beta += beta_shift[:, None]
     redo = np.flatnonzero(suspect)
-    if redo.size:
-        offsets = np.zeros(lengths.size, dtype=np.int64)
-        np.cumsum(lengths[:-1], out=offsets[1:])
-        exact_forward_backward(E, offsets, lengths, redo, trans, start, end, log_alpha, log_beta, log_z)
-    tokens = np.arange(E.shape[0])
-    token_log_z = np.repeat(log_z, lengths)
+    if not redo.size:
+        return Decoded(labels, scores, ScaledForwardBackward(alpha, alpha_shift, beta, beta_shift, log_z, lengths),
+                       confidence)
+    # Rare (extreme weights or impossible sequences): redo those sequences in log space, compactly.
+    offsets = np.zeros(lengths.size, dtype=np.int64)
+    np.cumsum(lengths[:-1], out=offsets[1:])
+    redo_lengths = _writable(lengths[redo])
+    redo_offsets = np.cumsum(redo_lengths) - redo_lengths
+    tokens = np.repeat(offsets[redo] - redo_offsets, redo_lengths) + np.arange(int(redo_lengths.sum()))
+    exact_alpha = np.empty((tokens.size, E.shape[1]))
+    exact_beta = np.empty((tokens.size, E.shape[1]))
+    redo_log_z = np.zeros(redo.size)
+    exact_forward_backward(_writable(E[tokens]), redo_offsets, redo_lengths, np.arange(redo.size), trans, start,
+                           end, exact_alpha, exact_beta, redo_log_z)
+    log_z[redo] = redo_log_z
+    token_log_z = np.repeat(redo_log_z, redo_lengths)
     token_log_z[~np.isfinite(token_log_z)] = np.inf  # no finite path: confidence 0, not NaN
-    confidence = np.exp(log_alpha[tokens, labels] + log_beta[tokens, labels] - token_log_z)
-    np.minimum(confidence, 1.0, out=confidence)  # rounding can overshoot 1 by an ulp or two
-    return Decoded(labels, scores, ForwardBackward(log_alpha, log_beta, log_z, lengths), confidence)
+    rows = np.arange(tokens.size)
+    exact_confidence = np.exp(exact_alpha[rows, labels[tokens]] + exact_beta[rows, labels[tokens]] - token_log_z)
+    confidence[tokens] = np.minimum(exact_confidence, 1.0)  # rounding can overshoot 1 by an ulp or two
+    fb = ScaledForwardBackward(alpha, alpha_shift, beta, beta_shift, log_z, lengths, tokens, exact_alpha, exact_beta)
+    return Decoded(labels, scores, fb, confidence)
 
 
 def compiled(loader: str = "load"):
@@ -611,7 +701,20 @@ def nbest(E, lengths, trans, start, end, k: int) -> tuple[np.ndarray, np.ndarray
     if int(k) < 1:
         raise ValueError(f"k must be at least 1, got {k}")
     k = int(k)
-    E, pk = _check_inputs(E, lengths, trans)
+    E = _check_emissions(E, trans)
+    kernels = _compiled_kernels(E)
+    if kernels is not None:
+        weights = _kernel_weights(E, trans, start, end)
+        # The kernel's tie rule assumes no NaN or +inf (numpy's argmax ranks NaN first); such input
+        # takes the numpy code.
+        if not any(np.isnan(a).any() or np.isposinf(a).any() for a in (E, *weights)):
+            lengths = _writable(_check_lengths(lengths, E.shape[0]))
+            return kernels[4](_writable(E), lengths, *weights, k)
+    return _nbest_numpy(E, _Packing(lengths, E.shape[0]), trans, start, end, k)
+
+
+def _nbest_numpy(E: np.ndarray, pk: _Packing, trans, start, end, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """`nbest` with numpy only: the reference for the compiled path."""
     n_labels = E.shape[1]
     trans = np.asarray(trans, dtype=np.float64)
     # trans_k[next, prev * k + r] = trans[prev, next]: one column per (previous label, rank) state.
@@ -651,15 +754,17 @@ def nbest(E, lengths, trans, start, end, k: int) -> tuple[np.ndarray, np.ndarray
 # Span probability
 
 
-def span_log_prob(fb: ForwardBackward, E, lengths, trans, end, seq, first, stop, b_label, i_label) -> np.ndarray:
+def span_log_prob(fb: ForwardBackward | ScaledForwardBackward, E, lengths, trans, end, seq, first, stop, b_label,
+                  i_label) -> np.ndarray:
     """log P(tokens first..stop-1 of sequence seq form exactly one chunk), vectorised over S spans.
 
     The event: y_first = B-X, y_first+1 .. y_stop-1 = I-X, and y_stop != I-X (or stop is the end of the
-    sequence). fb from `forward_backward` on the same E (N, L), lengths (B,), masked trans (L, L) and
-    end (L,). seq, first, stop: (S,) ints with 0 <= first < stop <= lengths[seq]; b_label, i_label: label
-    indices of B-X and I-X, scalars or (S,). Returns (S,) log probabilities (-inf for impossible spans).
-    Equals forward-backward with those tokens clamped: alpha at first, the chain of I-X scores, then the
-    sum over the label after the span (or end), minus log Z.
+    sequence). fb from `forward_backward` (or `decode`'s fb) on the same E (N, L), lengths (B,), masked
+    trans (L, L) and end (L,); only the rows it needs are asked of it. seq, first, stop: (S,) ints with
+    0 <= first < stop <= lengths[seq]; b_label, i_label: label indices of B-X and I-X, scalars or (S,).
+    Returns (S,) log probabilities (-inf for impossible spans). Equals forward-backward with those
+    tokens clamped: alpha at first, the chain of I-X scores, then the sum over the label after the
+    span (or end), minus log Z.
     """
     E = np.asarray(E, dtype=np.float64)
     trans = np.asarray(trans, dtype=np.float64)
@@ -678,7 +783,7 @@ def span_log_prob(fb: ForwardBackward, E, lengths, trans, end, seq, first, stop,
         raise ValueError("spans must satisfy 0 <= first < stop <= sequence length")
     offsets = np.concatenate(([0], np.cumsum(lengths)[:-1])) if lengths.size else lengths
     first_token = offsets[seq] + first
-    log_prob = fb.log_alpha[first_token, b_label]
+    log_prob = fb.log_alpha_at(first_token, b_label)
 
     # Tokens inside the span after the first: emissions of I-X plus the B->I and I->I moves.
     n_inside = stop - first - 1
@@ -700,7 +805,7 @@ def span_log_prob(fb: ForwardBackward, E, lengths, trans, end, seq, first, stop,
     inner = ~at_end
     if inner.any():
         next_token = offsets[seq[inner]] + stop[inner]
-        following = trans[last_label[inner]] + E[next_token] + fb.log_beta[next_token]
+        following = trans[last_label[inner]] + E[next_token] + fb.log_beta_rows(next_token)
         following[np.arange(following.shape[0]), i_label[inner]] = -np.inf
         log_prob[inner] += _logsumexp(following)
     log_z = fb.log_z[seq]

@@ -1,4 +1,4 @@
-"""Compiled (numba) Viterbi and forward-backward for the decode hot path; same results as crf.py's numpy code.
+"""Compiled (numba) Viterbi, forward-backward and n-best for the decode hot path; same results as crf.py's numpy code.
 
 The kernels take a flat batch (E (N, L), lengths (B,)) and cut it into chunks of about _CHUNK_TOKENS
 tokens. Each chunk is put in crf's packed layout (time-major, label-major (L, n): the columns of time
@@ -37,6 +37,9 @@ import numpy as np
 # Same threshold as crf._TINY: a scaled value below it may be sub-normal (lost precision) or a
 # product that underflowed to 0, so the sequence is redone in log space.
 _TINY = 1e-290
+# A token's sum of scaled alpha * beta above this is a normal float with full precision, so its
+# marginal is taken as a ratio of scaled values.
+_SAFE_SUM = 1e-280
 _NEG_INF = -np.inf
 # Columns per tile: (L, _TILE) blocks of the previous step stay in the first-level cache.
 _TILE = 128
@@ -444,6 +447,34 @@ def _unpack(packed, shift, flat_of_packed, flat, flat_shift):
             flat[row, j] = packed[j, col]
 
 
+@_jit
+def _unpack_beta_and_confidence(beta, beta_shift, rows, seq_of_col, labels, alpha_flat, alpha_shift_flat, log_z,
+                                beta_flat, beta_shift_flat, confidence):
+    """`_unpack` of beta, and the marginal of each token's decoded label (flat (N,)) on the way.
+
+    The marginal is alpha[y] * beta[y] / sum_j alpha[j] * beta[j] of the scaled values (the shifts
+    cancel, so no exp or log per token). If that sum is below _SAFE_SUM (scaled alpha and beta
+    disagree by hundreds of orders of magnitude, where the ratio could lose digits), the token takes
+    the log-space formula exp(log alpha + log beta - log Z) instead, as crf's numpy code does.
+    """
+    n_labels = beta.shape[0]
+    for col in range(rows.size):
+        row = rows[col]
+        label = labels[row]
+        beta_shift_flat[row] = beta_shift[col]
+        total = 0.0
+        for j in range(n_labels):
+            value = beta[j, col]
+            beta_flat[row, j] = value
+            total += alpha_flat[row, j] * value
+        if total >= _SAFE_SUM:
+            marginal = alpha_flat[row, label] * beta[label, col] / total
+        else:
+            marginal = np.exp(np.log(alpha_flat[row, label]) + np.log(beta[label, col]) + alpha_shift_flat[row]
+                              + beta_shift[col] - log_z[seq_of_col[col]])
+        confidence[row] = marginal if marginal < 1.0 else 1.0
+
+
 @_jit_cached
 def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
     """Viterbi and scaled forward-backward over a flat batch, chunk by chunk in the packed layout.
@@ -451,9 +482,10 @@ def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
     E (N, L) emissions, emission_exp (N, L) = exp(E - peak[:, None]), peak (N,) = `row_peaks(E)`,
     lengths (B,); trans (L, L), start (L,), end (L,) masked.
     Returns labels (N,), scores (B,), alpha (N, L) and alpha_shift (N,) with log_alpha = log(alpha) +
-    alpha_shift[:, None], likewise beta and beta_shift, log Z (B,), and suspect (B,) bool: sequences
-    whose scaled values are not trustworthy (redo them with `exact_forward_backward`). Empty sequences
-    get score 0 and log Z 0.
+    alpha_shift[:, None], likewise beta and beta_shift, log Z (B,), suspect (B,) bool: sequences
+    whose scaled values are not trustworthy (redo them with `exact_forward_backward`), and confidence
+    (N,): the marginal of each token's decoded label (not meaningful in suspect sequences). Empty
+    sequences get score 0 and log Z 0.
     """
     n_tokens, n_labels = E.shape
     labels = np.zeros(n_tokens, dtype=np.int64)
@@ -464,6 +496,7 @@ def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
     beta_flat = np.empty((n_tokens, n_labels))
     alpha_shift_flat = np.empty(n_tokens)
     beta_shift_flat = np.empty(n_tokens)
+    confidence = np.zeros(n_tokens)
     trans_exp, trans_shift = _exp_shifted(trans)
     start_exp, start_shift = _exp_shifted(start)
     end_exp, end_shift = _exp_shifted(end)
@@ -501,8 +534,9 @@ def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
         _unpack(work, shifts, rows, alpha_flat, alpha_shift_flat)
         _scaled_backward(Ep, factors, peaks, batch_sizes, step_start, last_cols, seq_of_col, trans, trans_exp,
                          trans_shift, end, end_exp, end_shift, work, shifts, suspect, sums, weighted, totals, lows)
-        _unpack(work, shifts, rows, beta_flat, beta_shift_flat)
-    return labels, scores, alpha_flat, alpha_shift_flat, beta_flat, beta_shift_flat, log_z, suspect
+        _unpack_beta_and_confidence(work, shifts, rows, seq_of_col, labels, alpha_flat, alpha_shift_flat, log_z,
+                                    beta_flat, beta_shift_flat, confidence)
+    return labels, scores, alpha_flat, alpha_shift_flat, beta_flat, beta_shift_flat, log_z, suspect, confidence
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -556,13 +590,109 @@ def exact_forward_backward(E, offsets, lengths, seqs, trans, start, end, log_alp
 
 
 # ----------------------------------------------------------------------------------------------------
+# n-best (list Viterbi)
+
+
+@_jit
+def _insert_top(values, states, value, state):
+    """Put (value, state) into the sorted top list values (k,) (best first), given value > values[-1].
+
+    It goes after every entry of equal value: candidates arrive in increasing state order, so ties
+    keep the lowest state first, as crf._top_k's repeated argmax does.
+    """
+    pos = values.size - 1
+    while pos > 0 and value > values[pos - 1]:
+        values[pos] = values[pos - 1]
+        states[pos] = states[pos - 1]
+        pos -= 1
+    values[pos] = value
+    states[pos] = state
+
+
+@_jit
+def _nbest_sequence(E, first, n, trans, start, end, k, delta, back, final_values, final_states):
+    """The k best paths of the sequence at rows first..first+n-1 of E (n >= 1): fills delta (n, L, k)
+    with the sorted top scores of partial paths ending in each label, back (n, L, k) with the state
+    (previous label * k + rank) each came from, and the final top list (k,) of states."""
+    n_labels = E.shape[1]
+    for j in range(n_labels):
+        delta[0, j, 0] = start[j] + E[first, j]
+        for r in range(1, k):
+            delta[0, j, r] = _NEG_INF
+            back[0, j, r] = 0
+        back[0, j, 0] = 0
+    for t in range(1, n):
+        for j in range(n_labels):
+            top = delta[t, j]
+            came = back[t, j]
+            top[:] = _NEG_INF
+            came[:] = 0  # a slot without a finite candidate points to state 0, like argmax of all -inf
+            for i in range(n_labels):
+                step = trans[i, j]
+                if step == _NEG_INF:  # only -inf candidates, which never enter the list
+                    continue
+                for r in range(k):
+                    value = delta[t - 1, i, r] + step
+                    if not value > top[k - 1]:  # ranks are sorted: no later one enters either
+                        break
+                    _insert_top(top, came, value, i * k + r)
+            emission = E[first + t, j]
+            for r in range(k):
+                top[r] += emission
+    final_values[:] = _NEG_INF
+    final_states[:] = 0
+    for i in range(n_labels):
+        for r in range(k):
+            value = delta[n - 1, i, r] + end[i]
+            if not value > final_values[k - 1]:
+                break
+            _insert_top(final_values, final_states, value, i * k + r)
+
+
+@_jit_cached
+def nbest_flat(E, lengths, trans, start, end, k):
+    """`crf.nbest` compiled: labels (k, N) int64 (-1 where a sequence has fewer than m+1 finite paths)
+    and scores (B, k), best first; same sums, ties and outputs as the numpy code (E, trans, start,
+    end without NaN or +inf). One sequence at a time: n-best runs on the few doubtful lines only.
+    """
+    n_tokens, n_labels = E.shape
+    labels = np.full((k, n_tokens), -1, dtype=np.int64)
+    scores = np.full((lengths.size, k), _NEG_INF)
+    max_len = 0
+    for b in range(lengths.size):
+        max_len = max(max_len, lengths[b])
+    delta = np.empty((max_len, n_labels, k))
+    back = np.zeros((max_len, n_labels, k), dtype=np.int64)
+    final_values = np.empty(k)
+    final_states = np.zeros(k, dtype=np.int64)
+    first = 0
+    for b in range(lengths.size):
+        n = lengths[b]
+        if n == 0:
+            scores[b, 0] = 0.0  # one empty path
+            continue
+        _nbest_sequence(E, first, n, trans, start, end, k, delta, back, final_values, final_states)
+        for m in range(k):
+            scores[b, m] = final_values[m]
+            if final_values[m] == _NEG_INF:
+                continue
+            state = final_states[m]
+            for t in range(n - 1, -1, -1):
+                label = state // k
+                labels[m, first + t] = label
+                state = back[t, label, state % k]
+        first += n
+    return labels, scores
+
+
+# ----------------------------------------------------------------------------------------------------
 # Loading
 
 
 _LOAD_LOCK = threading.Lock()
 
 
-def _warm_up(peaks, decode, viterbi, exact) -> None:
+def _warm_up(peaks, decode, viterbi, exact, nbest) -> None:
     """Compile (or load from the cache) the one signature crf uses, on a tiny batch."""
     E = np.zeros((3, 2))
     lengths = np.array([2, 0, 1], dtype=np.int64)
@@ -572,27 +702,29 @@ def _warm_up(peaks, decode, viterbi, exact) -> None:
     viterbi(E, lengths, square, vector, vector)
     exact(E, np.array([0, 2, 2], dtype=np.int64), lengths, np.array([0, 1, 2], dtype=np.int64),
           square, vector, vector, np.empty((3, 2)), np.empty((3, 2)), np.zeros(3))
+    nbest(E, lengths, square, vector, vector, 2)
 
 
 def load():
-    """(row_peaks, decode_flat, viterbi_flat, exact_forward_backward), compiled; call once before
-    using them.
+    """(row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat), compiled; call once
+    before using them.
 
     A cache that cannot be read or written (corrupt files, a folder that became read-only, a full
     disk) must not stop tagging: the kernels are then compiled again without the cache, silently.
     """
-    global row_peaks, decode_flat, viterbi_flat, exact_forward_backward
+    global row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
     with _LOAD_LOCK, warnings.catch_warnings():
         warnings.simplefilter("ignore", numba.NumbaWarning)
         try:
-            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward)
+            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
         except Exception:  # noqa: BLE001 - any cache fault; a real compile error recurs below and is raised
             row_peaks = _jit(row_peaks.py_func)
             decode_flat = _jit(decode_flat.py_func)
             viterbi_flat = _jit(viterbi_flat.py_func)
             exact_forward_backward = _jit(exact_forward_backward.py_func)
-            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward)
-        return row_peaks, decode_flat, viterbi_flat, exact_forward_backward
+            nbest_flat = _jit(nbest_flat.py_func)
+            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
+        return row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
 
 
 @_jit_cached

@@ -168,9 +168,15 @@ def test_viterbi_matches_brute_force_on_flat_and_confident_models(labels, seed, 
         np.testing.assert_array_equal(best_labels[offset:offset + n], paths[scores.argmax()])
 
 
+@pytest.fixture(params=[True, False], ids=["kernels", "numpy"])
+def both_paths(request, monkeypatch):
+    """Run the test through the compiled kernels (if numba imports) and through the numpy code."""
+    monkeypatch.setattr(crf, "USE_KERNELS", request.param)
+
+
 @pytest.mark.parametrize("labels,seed", CASES)
 @pytest.mark.parametrize("k", [2, 3, 4, 5])
-def test_nbest_matches_brute_force(labels, seed, k):
+def test_nbest_matches_brute_force(labels, seed, k, both_paths):
     rng = np.random.default_rng(100 + seed)
     lengths = random_lengths(rng, max_len=5)
     E, trans, start, end = random_model(rng, labels, lengths)
@@ -191,7 +197,7 @@ def test_nbest_matches_brute_force(labels, seed, k):
         assert (nbest_labels[found:, offset:offset + n] == -1).all()
 
 
-def test_nbest_marks_missing_paths():
+def test_nbest_marks_missing_paths(both_paths):
     # With labels O, B-a, I-a and one token, only O and B-a may start (IOB2 rule): 2 paths exist.
     allowed_trans, allowed_start = crf.bio_allowed(["O", "B-a", "I-a"])
     trans, start = crf.apply_mask(np.zeros((3, 3)), np.zeros(3), allowed_trans, allowed_start)

@@ -93,12 +93,33 @@ def offsets_of(lengths):
 def suspect_sequences(E, lengths, trans, start, end):
     """The kernel's own verdict: which sequences leave the scaled range (and are redone exactly)."""
     E = np.ascontiguousarray(E, dtype=np.float64)
-    row_peaks, decode_flat, _, _ = crf._compiled_kernels(E)
+    row_peaks, decode_flat = crf._compiled_kernels(E)[:2]
     peak = row_peaks(E)
     with np.errstate(invalid="ignore"):
         emission_exp = np.exp(E - peak[:, None])
     return decode_flat(E, emission_exp, peak, np.asarray(lengths, dtype=np.int64),
-                       *crf._kernel_weights(E, trans, start, end))[-1]
+                       *crf._kernel_weights(E, trans, start, end))[7]
+
+
+def assert_log_values_equal(mine, theirs, name):
+    """Same -inf entries, no NaN, finite entries equal to 1e-9 (log space)."""
+    assert mine.shape == theirs.shape, name
+    assert not np.isnan(mine).any(), name
+    np.testing.assert_array_equal(np.isfinite(mine), np.isfinite(theirs), err_msg=name)
+    np.testing.assert_array_equal(mine[~np.isfinite(mine)], theirs[~np.isfinite(theirs)], err_msg=name)
+    finite = np.isfinite(mine)
+    np.testing.assert_allclose(mine[finite], theirs[finite], rtol=1e-12, atol=EXACT, err_msg=name)
+
+
+def assert_rows_on_demand_equal(fb, ref_fb):
+    """fb.log_alpha_at / log_beta_rows (what span_log_prob takes) equal the reference's full arrays,
+    for tokens in any order and repeated."""
+    n_tokens, n_labels = ref_fb.log_alpha.shape
+    tokens = np.concatenate([np.arange(n_tokens), np.arange(n_tokens)[::-1]])
+    assert_log_values_equal(fb.log_beta_rows(tokens), ref_fb.log_beta[tokens], "log_beta rows")
+    for j in range(n_labels):
+        labels = np.full(tokens.size, j)
+        assert_log_values_equal(fb.log_alpha_at(tokens, labels), ref_fb.log_alpha[tokens, j], "log_alpha entries")
 
 
 def assert_same_as_numpy(E, lengths, trans, start, end):
@@ -106,13 +127,13 @@ def assert_same_as_numpy(E, lengths, trans, start, end):
     ref = numpy_decode(E, lengths, trans, start, end)
     np.testing.assert_array_equal(got.labels, ref.labels)
     np.testing.assert_array_equal(got.scores, ref.scores)
+    lazy = isinstance(got.fb, crf.ScaledForwardBackward)
+    if lazy:  # before anything is materialised: entries computed on demand
+        assert_rows_on_demand_equal(got.fb, ref.fb)
     for name in ("log_alpha", "log_beta", "log_z"):
-        mine, theirs = getattr(got.fb, name), getattr(ref.fb, name)
-        assert not np.isnan(mine).any(), name
-        np.testing.assert_array_equal(np.isfinite(mine), np.isfinite(theirs), err_msg=name)
-        np.testing.assert_array_equal(mine[~np.isfinite(mine)], theirs[~np.isfinite(theirs)], err_msg=name)
-        finite = np.isfinite(mine)
-        np.testing.assert_allclose(mine[finite], theirs[finite], rtol=1e-12, atol=EXACT, err_msg=name)
+        assert_log_values_equal(getattr(got.fb, name), getattr(ref.fb, name), name)
+    if lazy:  # and from the materialised arrays
+        assert_rows_on_demand_equal(got.fb, ref.fb)
     np.testing.assert_array_equal(got.fb.lengths, ref.fb.lengths)
     assert not np.isnan(got.confidence).any() and (got.confidence <= 1.0).all()
     np.testing.assert_allclose(got.confidence, ref.confidence, rtol=0, atol=EXACT)
@@ -375,6 +396,164 @@ def test_wrong_shapes_raise_instead_of_reading_out_of_bounds():
         crf.decode(E, [3], np.zeros((3, 3)), np.zeros(3), np.zeros(3))
 
 
+def test_confidence_when_scaled_alpha_and_beta_disagree_by_hundreds_of_orders():
+    # One token, start favours label 0 and end label 1 by 655 (exp(-655) ~ 1e-285): scaled alpha
+    # (1, 1e-285) and beta (1e-285, 1) stay above the underflow guard, so the sequence is not redone,
+    # but sum_j alpha_j beta_j is ~2e-285; the kernel takes the log-space formula for such a token.
+    # Brute force: the two paths score 0 and 0, so each label has marginal 1/2 (Lafferty et al. 2001).
+    E = np.zeros((1, 2))
+    lengths = np.array([1])
+    trans, start, end = np.zeros((2, 2)), np.array([0.0, -655.0]), np.array([-655.0, 0.0])
+    assert not suspect_sequences(E, lengths, trans, start, end).any()
+    decoded = assert_same_as_numpy(E, lengths, trans, start, end)
+    paths, scores = brute_force(E, trans, start, end)
+    assert decoded.labels[0] == 0  # tie: numpy.argmax's first maximum (numpy documentation)
+    expected = np.exp(logsumexp(scores[paths[:, 0] == 0]) - logsumexp(scores))  # scipy.special.logsumexp
+    assert abs(decoded.confidence[0] - expected) < EXACT and abs(expected - 0.5) < EXACT
+
+
+@pytest.mark.parametrize("extreme", [False, True])
+def test_span_log_prob_from_decode_matches_brute_force(extreme):
+    # span_log_prob takes log alpha and log beta rows on demand from decode's scaled forward-backward;
+    # with extreme weights some sequences are redone in log space and their rows come from there.
+    # Reference: brute-force enumeration (Lafferty et al. 2001) of the event "exactly this chunk"
+    # (IOB2 chunk rules, Tjong Kim Sang & Veenstra 1999), summed with scipy.special.logsumexp.
+    labels = ["O", "B-a", "I-a", "B-b", "I-b"]
+    rng = np.random.default_rng(31 + extreme)
+    lengths = np.array([4, 0, 3, 5, 1, 2])
+    E, trans, start, end = random_model(rng, labels, int(lengths.sum()))
+    if extreme:
+        E[:4] += rng.choice([-1000.0, 1000.0], size=(4, 5))
+        E[7:12] += 700.0 * rng.normal(size=(5, 5))
+        assert suspect_sequences(E, lengths, trans, start, end)[[0, 3]].all()
+    decoded = crf.decode(E, lengths, trans, start, end)
+    seq, first, stop, b_label, i_label, expected = [], [], [], [], [], []
+    for b, (offset, n) in enumerate(zip(offsets_of(lengths), lengths)):
+        if n == 0:
+            continue
+        paths, scores = brute_force(E[offset:offset + n], trans, start, end)
+        for lo, hi, (b_x, i_x) in itertools.product(range(n), range(1, n + 1), [(1, 2), (3, 4)]):
+            if hi <= lo:
+                continue
+            hit = (paths[:, lo] == b_x) & (paths[:, lo + 1:hi] == i_x).all(axis=1)
+            if hi < n:
+                hit &= paths[:, hi] != i_x
+            seq.append(b); first.append(lo); stop.append(hi); b_label.append(b_x); i_label.append(i_x)  # noqa: E702
+            expected.append(logsumexp(scores[hit]) - logsumexp(scores) if hit.any() else -np.inf)
+    got = crf.span_log_prob(decoded.fb, E, lengths, trans, end, seq, first, stop, b_label, i_label)
+    expected = np.array(expected)
+    np.testing.assert_array_equal(np.isfinite(got), np.isfinite(expected))
+    finite = np.isfinite(expected)
+    np.testing.assert_allclose(np.exp(got[finite]), np.exp(expected[finite]), rtol=0, atol=EXACT)
+    if not extreme:
+        np.testing.assert_allclose(got[finite], expected[finite], rtol=0, atol=EXACT)
+    # Rows on demand left the full arrays alone (the point of the lazy form).
+    assert decoded.fb._log_alpha is None and decoded.fb._log_beta is None
+
+
+# ----------------------------------------------------------------------------------------------------
+# n-best: the kernel equals the numpy code (itself checked against brute force in tests/test_crf.py)
+
+
+def numpy_nbest(E, lengths, trans, start, end, k):
+    crf.USE_KERNELS = False
+    try:
+        return crf.nbest(E, lengths, trans, start, end, k)
+    finally:
+        crf.USE_KERNELS = True
+
+
+def assert_nbest_same_as_numpy(E, lengths, trans, start, end, k):
+    """Labels and scores identical, bit for bit: same sums in the same order, same tie rule."""
+    got_labels, got_scores = crf.nbest(E, lengths, trans, start, end, k)
+    ref_labels, ref_scores = numpy_nbest(E, lengths, trans, start, end, k)
+    np.testing.assert_array_equal(got_labels, ref_labels)
+    np.testing.assert_array_equal(got_scores, ref_scores)
+    assert got_labels.dtype == ref_labels.dtype == np.int64
+    return got_labels, got_scores
+
+
+def test_nbest_runs_the_kernel(monkeypatch):
+    calls = []
+    kernels = list(crf._compiled_kernels(np.zeros((1, 2))))
+    original = kernels[4]
+    kernels[4] = lambda *args: calls.append(args) or original(*args)
+    monkeypatch.setitem(crf._loaded, "load", tuple(kernels))
+    labels, scores = crf.nbest(np.array([[1.0, 3.0]]), [1], np.zeros((2, 2)), np.zeros(2), np.zeros(2), 2)
+    assert len(calls) == 1
+    # one token, no transitions: the paths are the labels, ranked by emission (by hand from the definition)
+    np.testing.assert_array_equal(labels[:, 0], [1, 0])
+    np.testing.assert_array_equal(scores[0], [3.0, 1.0])
+
+
+@settings(max_examples=150, deadline=None)
+@given(batches(), st.integers(1, 5))
+def test_nbest_equals_numpy_path(batch, k):
+    assert_nbest_same_as_numpy(*batch, k)
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.integers(0, 10_000), st.integers(1, 6))
+def test_nbest_ties_and_forbidden_moves_match_numpy(seed, k):
+    # Integer weights in {-1, 0, 1} tie constantly; random -inf moves, starts and emissions (some
+    # sequences then have fewer than k paths, or none); lengths 0 and 1 included.
+    rng = np.random.default_rng(seed)
+    n_labels = int(rng.integers(1, 6))
+    lengths = np.array(list(rng.integers(0, 7, size=rng.integers(0, 8))) + [0, 1], dtype=np.int64)
+    lengths = lengths[rng.permutation(lengths.size)]
+    n_tokens = int(lengths.sum())
+    E = rng.integers(-1, 2, size=(n_tokens, n_labels)).astype(float)
+    trans = rng.integers(-1, 2, size=(n_labels, n_labels)).astype(float)
+    start = rng.integers(-1, 2, size=n_labels).astype(float)
+    end = rng.integers(-1, 2, size=n_labels).astype(float)
+    trans[rng.random(trans.shape) < 0.3] = -np.inf
+    start[rng.random(n_labels) < 0.2] = -np.inf
+    E[rng.random(E.shape) < 0.15] = -np.inf
+    assert_nbest_same_as_numpy(E, lengths, trans, start, end, k)
+
+
+def test_nbest_all_ties_go_to_the_lowest_labels():
+    # All weights 0: every path ties. The numpy code ranks tied candidates with numpy.argmax's
+    # first-maximum rule (numpy documentation) over states (label, rank), label-major; worked by hand
+    # for 2 labels and 2 tokens: at token 1 each label keeps (from 0 rank 0, from 1 rank 0), and the
+    # final states in order are (0, rank 0) -> path 0 0, (0, rank 1) -> 1 0, (1, rank 0) -> 0 1.
+    labels, scores = assert_nbest_same_as_numpy(np.zeros((2, 2)), [2], np.zeros((2, 2)), np.zeros(2),
+                                                np.zeros(2), 3)
+    np.testing.assert_array_equal(labels, [[0, 0], [1, 0], [0, 1]])
+    np.testing.assert_array_equal(scores, [[0.0, 0.0, 0.0]])
+
+
+def test_nbest_edge_cases_match_numpy():
+    trans, start, end = np.zeros((3, 3)), np.zeros(3), np.zeros(3)
+    for lengths in ([], [0], [0, 0, 0]):  # no tokens: an empty path of score 0 per sequence
+        labels, scores = assert_nbest_same_as_numpy(np.zeros((0, 3)), lengths, trans, start, end, 2)
+        assert labels.shape == (2, 0) and scores.shape == (len(lengths), 2)
+    impossible = np.full((3, 3), -np.inf)  # no path of finite score: all -1 and -inf
+    labels, scores = assert_nbest_same_as_numpy(impossible, [1, 2], trans, start, end, 2)
+    assert (labels == -1).all() and np.isneginf(scores).all()
+    # k far above the number of paths (one token, two allowed starts under IOB2)
+    allowed_trans, allowed_start = crf.bio_allowed(["O", "B-a", "I-a"])
+    trans_m, start_m = crf.apply_mask(trans, start, allowed_trans, allowed_start)
+    labels, scores = assert_nbest_same_as_numpy(np.array([[0.0, 1.0, 5.0]]), [1], trans_m, start_m, end, 6)
+    np.testing.assert_array_equal(labels[:, 0], [1, 0, -1, -1, -1, -1])
+
+
+def test_nbest_with_nan_takes_the_numpy_code():
+    # numpy.argmax ranks NaN first (numpy documentation); the kernel does not, so NaN input is left
+    # to the numpy code and the results are the same.
+    E = np.array([[0.0, np.nan], [1.0, 2.0]])
+    assert_nbest_same_as_numpy(E, [2], np.zeros((2, 2)), np.zeros(2), np.zeros(2), 2)
+
+
+def test_nbest_large_batch_matches_numpy():
+    labels = ["O"] + [f"{p}-{t}" for t in "abcdefghi" for p in "BI"]  # 19 labels, BIO masked
+    rng = np.random.default_rng(19)
+    lengths = rng.integers(0, 40, size=60)
+    E, trans, start, end = random_model(rng, labels, int(lengths.sum()), scale=2.0)
+    for k in (1, 2, 3):
+        assert_nbest_same_as_numpy(E, lengths, trans, start, end, k)
+
+
 # ----------------------------------------------------------------------------------------------------
 # Loading: a failing cache must not stop decoding
 
@@ -390,20 +569,20 @@ def test_load_recovers_from_a_failing_cache(monkeypatch):
 
     original = crf_kernels._warm_up
     saved = (crf_kernels.row_peaks, crf_kernels.decode_flat, crf_kernels.viterbi_flat,
-             crf_kernels.exact_forward_backward)
+             crf_kernels.exact_forward_backward, crf_kernels.nbest_flat)
     monkeypatch.setattr(crf_kernels, "_warm_up", broken_then_working)
     try:
         kernels = crf_kernels.load()
         assert len(calls) == 2
         assert all(new is not old for new, old in zip(kernels, saved))  # rebuilt without the cache
-        _, _, viterbi_flat, _ = kernels
+        viterbi_flat = kernels[2]
         labels, scores = viterbi_flat(np.array([[1.0, 3.0], [2.0, 0.0]]), np.array([1, 1]), np.zeros((2, 2)),
                                       np.zeros(2), np.zeros(2))
         np.testing.assert_array_equal(labels, [1, 0])  # each token alone: its best emission
         np.testing.assert_array_equal(scores, [3.0, 2.0])
     finally:
         (crf_kernels.row_peaks, crf_kernels.decode_flat, crf_kernels.viterbi_flat,
-         crf_kernels.exact_forward_backward) = saved
+         crf_kernels.exact_forward_backward, crf_kernels.nbest_flat) = saved
 
 
 _DECODE_SCRIPT = (
@@ -450,7 +629,7 @@ def test_corrupt_cache_files_are_ignored(tmp_path):
     def corrupt(folder):
         folder.mkdir()
         source = Path(crf_kernels.__file__).read_text()
-        for name in ("row_peaks", "decode_flat", "viterbi_flat", "exact_forward_backward"):
+        for name in ("row_peaks", "decode_flat", "viterbi_flat", "exact_forward_backward", "nbest_flat"):
             line = source.splitlines().index(f"def {name}(" + source.split(f"def {name}(")[1].splitlines()[0]) + 1
             index = folder / f"crf_kernels.{name}-{line}.py{sys.version_info.major}{sys.version_info.minor}.nbi"
             index.write_bytes(b"\x80\x04garbage" * 10)
