@@ -1028,14 +1028,17 @@ class _TypeScorer:
       value cut has its cut value's block);
     - each prefix and suffix: blocks made up front for every known value, found for all types of a
       batch at once by searching their code points packed into integers (`_AffixTables`);
-    - its shape value: blocks made up front for every known one;
-    - the rest of its shape features with its kind (collapsed shape, kind, length, shape flags, and for
-      ASCII texts the case flags, which for ASCII follow from the shape: X upper, x lower, the rest
-      uncased): blocks cached by those values, found through a cache by (shape, kind). Non-ASCII texts
-      test the case flags one by one (they are rare).
-    Per batch that is a few C-level passes over the new types (join, translate, lower, split, a dict
-    lookup for the shape and one for the lower form), a fixed number of numpy calls, and one compiled
-    sum (`feature_kernels.sum_block_rows`; numpy adds in the same order without it).
+    - its shape value and its collapsed shape value: blocks made up front for every known one;
+    - the rest of its shape features with its kind (kind, length bucket, shape flags and, for ASCII
+      texts, the case flags, which for ASCII follow from the shape: X upper, x lower, the rest
+      uncased): one block per (signature, kind), made when first met. Shapes with one signature
+      (`_shape_signatures`) share those features: hosts of every name length, ids of every hex digit
+      pattern. Non-ASCII texts test the case flags one by one (they are rare).
+    Shapes are kept by id (a dict lookup per type), with their value rows and signature; new ones are
+    registered for a whole batch at once. Per batch that is a few C-level passes over the new types
+    (join, translate, lower, split, a dict lookup for the shape and one for the lower form), a fixed
+    number of numpy calls, and two compiled kernels (`feature_kernels`: the affix lookup and the sum;
+    numpy does the same without them, the sum in the same order).
     """
 
     def __init__(self, encoder: _VocabularyEncoder, weights: np.ndarray, n_slots: int, limit: int):
