@@ -9,8 +9,8 @@ $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet -e '.[test]'
-	# Compile the numba kernels once now (about 20 s) rather than in the first daemon or test.
-	$(PY) -c 'from streamtag import crf_kernels as k; k.load(); k.load_emission_kernel()'
+	# Compile the numba kernels once now (about a minute of CPU) rather than in the first daemon or test.
+	$(PY) -c 'from streamtag import crf_kernels as c, feature_kernels as f, scan_kernels as s; c.load(); c.load_emission_kernel(); f.load(); s._load()'
 	touch $(STAMP)
 
 test: $(STAMP)
