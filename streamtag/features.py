@@ -23,7 +23,7 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from importlib import resources
 from itertools import chain, groupby, islice, repeat
-from operator import add, itemgetter
+from operator import contains, itemgetter
 from pathlib import Path
 
 import numpy as np
@@ -1128,11 +1128,12 @@ class _TypeScorer:
         if self.n_shapes + n_types > self.limit:
             self._reset_shapes()
         joined = _JOIN.join(texts)
-        if joined.isascii() and joined.count(_JOIN) == n_types - 1:
+        holds_separator = joined.count(_JOIN) != n_types - 1
+        if joined.isascii() and not holds_separator:
             shapes, lowers, codes = _ascii_forms(joined)
             rows = self._part_rows(shapes, lowers, kind_ids, kind_names, [(codes, 7, n_types)], False)
         else:
-            rows = self._mixed_rows(texts, kind_ids, kind_names)
+            rows = self._mixed_rows(texts, kind_ids, kind_names, holds_separator)
         flat = out.reshape(n_types, self.width)
         kernels = _feature_kernels()
         if kernels is not None:
@@ -1147,12 +1148,14 @@ class _TypeScorer:
             hits = np.flatnonzero(column)
             flat[hits] += self.blocks[column[hits]]
 
-    def _mixed_rows(self, texts: list[str], kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
-        """(M, P) store rows of types some of which are not ASCII (or hold the separator, NUL): the
-        ASCII ones still go the fast way, the others one text at a time where it matters."""
+    def _mixed_rows(self, texts: list[str], kind_ids: np.ndarray, kind_names: list[str],
+                    holds_separator: bool) -> np.ndarray:
+        """(M, P) store rows of types some of which are not ASCII or hold the separator (NUL: then
+        ``holds_separator``): the other ones still go the fast way, these one text at a time."""
         n_types = len(texts)
         fast = np.fromiter(map(str.isascii, texts), dtype=bool, count=n_types)
-        fast &= ~np.fromiter(map(str.__contains__, texts, repeat(_JOIN)), dtype=bool, count=n_types)
+        if holds_separator:
+            fast &= ~np.fromiter(map(contains, texts, repeat(_JOIN)), dtype=bool, count=n_types)
         fast_types, slow_types = np.flatnonzero(fast), np.flatnonzero(~fast)
         slow_texts = _pick(texts, slow_types.tolist())
         shapes, lowers, codes = _ascii_forms(_JOIN.join(_pick(texts, fast_types.tolist()))) \
