@@ -1378,6 +1378,9 @@ def _collapsed(shapes: list[str]) -> list[str]:
     return codes[keep].tobytes().decode("utf-32-le", "surrogatepass").split(_JOIN)
 
 
+_NO_KIND = object()   # the kind of table rows that hold no type: unequal to any kind a token has
+
+
 def _pick(items: Sequence, picked: list[int]) -> Sequence:
     """items[i] for i in picked, as a tuple made in C (a list comprehension costs about twice as much)."""
     if len(picked) == 1:
@@ -1446,10 +1449,10 @@ class EmissionScorer:
         if hasattr(self, "table") and self.table.shape[0] >= capacity:
             # Keep the table: it refills to the same size, and freeing and regrowing it would make
             # resident memory rise and fall with every refill instead of staying flat.
-            self.kind_of_row[1:] = None
+            self.kind_of_row[1:] = _NO_KIND
             return
         self.table = np.zeros((capacity, self.n_slots, self.n_labels))     # (capacity, K, L)
-        self.kind_of_row = np.full(capacity, None, dtype=object)          # (capacity,) kind
+        self.kind_of_row = np.full(capacity, _NO_KIND, dtype=object)      # (capacity,) kind
         boundary = self.constant_rows[self.rows.boundary_base:]
         self.table[self._BOUNDARY, 1:] = boundary                           # slot k -> offsets[k]
 
@@ -1461,7 +1464,7 @@ class EmissionScorer:
         rows = np.fromiter(map(self.row_of_text.get, texts, repeat(self._BOUNDARY)), dtype=np.int64, count=n)
         # Kinds compared as objects: building the object array (none if ``kinds`` is one already) and
         # comparing (equal strings, mostly the very same objects) costs about half of a dict lookup per
-        # token. Unused rows hold None.
+        # token. Unused rows (and the boundary row) hold _NO_KIND, which equals no kind.
         other = np.flatnonzero(self.kind_of_row[rows] != np.asarray(kinds, dtype=object))  # new, or another kind
         if not other.size:
             return rows
@@ -1548,7 +1551,7 @@ class EmissionScorer:
         grown = np.zeros((capacity, self.n_slots, self.n_labels))
         grown[: self.n_rows] = self.table[: self.n_rows]
         self.table = grown
-        kinds = np.full(capacity, None, dtype=object)
+        kinds = np.full(capacity, _NO_KIND, dtype=object)
         kinds[: self.n_rows] = self.kind_of_row[: self.n_rows]
         self.kind_of_row = kinds
 
