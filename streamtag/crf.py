@@ -67,24 +67,26 @@ class ForwardBackward(NamedTuple):
 
 class ScaledForwardBackward:
     """What `decode` returns as its forward-backward: `ForwardBackward`'s attributes and methods, kept
-    in scaled form until asked for.
+    in the kernel's scaled, packed form until asked for.
 
-    log_z (B,) and lengths (B,) are plain attributes. log_alpha (N, L) = log(alpha) + alpha_shift[:, None]
-    and likewise log_beta are computed on first access (a log of every entry, which the tagger's hot
-    path avoids) and kept; `log_alpha_at` and `log_beta_rows` take the log of the entries asked for
-    only. Tokens of sequences redone in log space (`exact_tokens` (M,), ascending) have their exact
-    rows in `exact_alpha`, `exact_beta` (M, L) instead.
+    log_z (B,) and lengths (B,) are plain attributes. Entry (t, j) of the scaled alpha is
+    alpha[row_base[t] + j * row_stride[t]] (alpha, beta: (N * L,) buffers; row_base, row_stride (N,)),
+    and log_alpha[t, j] = log(that) + alpha_shift[t]; likewise beta. log_alpha / log_beta (N, L) are
+    computed on first access (a gather and a log of every entry, which the tagger's hot path avoids)
+    and kept; `log_alpha_at` and `log_beta_rows` compute the entries asked for only. Tokens of
+    sequences redone in log space (`exact_tokens` (M,), ascending) have their exact rows in
+    `exact_alpha`, `exact_beta` (M, L) instead.
     """
 
-    __slots__ = ("alpha", "alpha_shift", "beta", "beta_shift", "log_z", "lengths", "exact_tokens",
-                 "exact_alpha", "exact_beta", "_log_alpha", "_log_beta")
+    __slots__ = ("n_labels", "alpha", "beta", "row_base", "row_stride", "alpha_shift", "beta_shift", "log_z",
+                 "lengths", "exact_tokens", "exact_alpha", "exact_beta", "_log_alpha", "_log_beta")
 
-    def __init__(self, alpha, alpha_shift, beta, beta_shift, log_z, lengths, exact_tokens=None, exact_alpha=None,
-                 exact_beta=None):
-        self.alpha, self.alpha_shift, self.beta, self.beta_shift = alpha, alpha_shift, beta, beta_shift
-        self.log_z, self.lengths = log_z, lengths
+    def __init__(self, n_labels, alpha, beta, row_base, row_stride, alpha_shift, beta_shift, log_z, lengths,
+                 exact_tokens=None, exact_alpha=None, exact_beta=None):
+        self.n_labels = n_labels
+        self.alpha, self.beta, self.row_base, self.row_stride = alpha, beta, row_base, row_stride
+        self.alpha_shift, self.beta_shift, self.log_z, self.lengths = alpha_shift, beta_shift, log_z, lengths
         self.exact_tokens = np.zeros(0, dtype=np.int64) if exact_tokens is None else exact_tokens
-        n_labels = alpha.shape[1]
         self.exact_alpha = np.zeros((0, n_labels)) if exact_alpha is None else exact_alpha
         self.exact_beta = np.zeros((0, n_labels)) if exact_beta is None else exact_beta
         self._log_alpha = self._log_beta = None
@@ -92,28 +94,22 @@ class ScaledForwardBackward:
     @property
     def log_alpha(self) -> np.ndarray:
         if self._log_alpha is None:
-            self._log_alpha = self._materialise(self.alpha, self.alpha_shift, self.exact_alpha)
+            self._log_alpha = self._log_rows(self.alpha, self.alpha_shift, self.exact_alpha,
+                                             np.arange(self.row_base.size))
         return self._log_alpha
 
     @property
     def log_beta(self) -> np.ndarray:
         if self._log_beta is None:
-            self._log_beta = self._materialise(self.beta, self.beta_shift, self.exact_beta)
+            self._log_beta = self._log_rows(self.beta, self.beta_shift, self.exact_beta, np.arange(self.row_base.size))
         return self._log_beta
-
-    def _materialise(self, scaled, shift, exact) -> np.ndarray:
-        with np.errstate(divide="ignore"):  # an exact zero is a forbidden state: -inf
-            values = np.log(scaled)
-        values += shift[:, None]
-        values[self.exact_tokens] = exact
-        return values
 
     def log_alpha_at(self, tokens: np.ndarray, labels: np.ndarray) -> np.ndarray:
         """log_alpha[tokens, labels] (S,), a new array, computing only those entries."""
         if self._log_alpha is not None:
             return self._log_alpha[tokens, labels]
-        with np.errstate(divide="ignore"):
-            values = np.log(self.alpha[tokens, labels])
+        with np.errstate(divide="ignore"):  # an exact zero is a forbidden state: -inf
+            values = np.log(self.alpha[self.row_base[tokens] + labels * self.row_stride[tokens]])
         values += self.alpha_shift[tokens]
         if self.exact_tokens.size:
             where, found = self._exact_rows(tokens)
@@ -124,12 +120,17 @@ class ScaledForwardBackward:
         """log_beta[tokens] (S, L), a new array, computing only those rows."""
         if self._log_beta is not None:
             return self._log_beta[tokens]
+        return self._log_rows(self.beta, self.beta_shift, self.exact_beta, tokens)
+
+    def _log_rows(self, scaled, shift, exact, tokens) -> np.ndarray:
+        """(S, L) log values of the rows of tokens (S,), from the scaled buffer, exact rows patched in."""
+        index = self.row_base[tokens][:, None] + np.arange(self.n_labels) * self.row_stride[tokens][:, None]
         with np.errstate(divide="ignore"):
-            values = np.log(self.beta[tokens])
-        values += self.beta_shift[tokens][:, None]
+            values = np.log(scaled[index])
+        values += shift[tokens][:, None]
         if self.exact_tokens.size:
             where, found = self._exact_rows(tokens)
-            values[found] = self.exact_beta[where[found]]
+            values[found] = exact[where[found]]
         return values
 
     def _exact_rows(self, tokens: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -587,12 +588,11 @@ def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, 
     peak = row_peaks(E)
     with np.errstate(invalid="ignore"):  # a token without a finite emission: the kernel flags it
         emission_exp = np.exp(E - peak[:, None])
-    labels, scores, alpha, alpha_shift, beta, beta_shift, log_z, suspect, confidence = decode_flat(
-        E, emission_exp, peak, lengths, trans, start, end)
+    labels, scores, *scaled, log_z, suspect, confidence = decode_flat(E, emission_exp, peak, lengths, trans, start,
+                                                                       end)
     redo = np.flatnonzero(suspect)
     if not redo.size:
-        return Decoded(labels, scores, ScaledForwardBackward(alpha, alpha_shift, beta, beta_shift, log_z, lengths),
-                       confidence)
+        return Decoded(labels, scores, ScaledForwardBackward(E.shape[1], *scaled, log_z, lengths), confidence)
     # Rare (extreme weights or impossible sequences): redo those sequences in log space, compactly.
     offsets = np.zeros(lengths.size, dtype=np.int64)
     np.cumsum(lengths[:-1], out=offsets[1:])
@@ -610,7 +610,7 @@ def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, 
     rows = np.arange(tokens.size)
     exact_confidence = np.exp(exact_alpha[rows, labels[tokens]] + exact_beta[rows, labels[tokens]] - token_log_z)
     confidence[tokens] = np.minimum(exact_confidence, 1.0)  # rounding can overshoot 1 by an ulp or two
-    fb = ScaledForwardBackward(alpha, alpha_shift, beta, beta_shift, log_z, lengths, tokens, exact_alpha, exact_beta)
+    fb = ScaledForwardBackward(E.shape[1], *scaled, log_z, lengths, tokens, exact_alpha, exact_beta)
     return Decoded(labels, scores, fb, confidence)
 
 

@@ -433,46 +433,39 @@ def _scaled_backward(Ep, emission_exp, peak, batch_sizes, step_start, last_packe
 
 
 @_jit
-def _unpack(packed, shift, flat_of_packed, flat, flat_shift):
-    """packed (L, N) and shift (N,) -> flat (N, L) and flat_shift (N,): column c goes to row flat_of_packed[c].
-
-    Column by column, so each flat row is written whole (writing one label of many rows at a time
-    inside the recursions measured five times slower).
-    """
-    n_labels, n_tokens = packed.shape
-    for col in range(n_tokens):
-        row = flat_of_packed[col]
-        flat_shift[row] = shift[col]
-        for j in range(n_labels):
-            flat[row, j] = packed[j, col]
-
-
-@_jit
-def _unpack_beta_and_confidence(beta, beta_shift, rows, seq_of_col, labels, alpha_flat, alpha_shift_flat, log_z,
-                                beta_flat, beta_shift_flat, confidence):
-    """`_unpack` of beta, and the marginal of each token's decoded label (flat (N,)) on the way.
+def _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_col, labels, log_z, block, sums,
+                            confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat):
+    """Per token of a chunk (packed (L, n) alpha and beta, kept where they are): the marginal of its
+    decoded label, where its entries lie in the batch's buffers, and its shifts in flat order.
 
     The marginal is alpha[y] * beta[y] / sum_j alpha[j] * beta[j] of the scaled values (the shifts
     cancel, so no exp or log per token). If that sum is below _SAFE_SUM (scaled alpha and beta
     disagree by hundreds of orders of magnitude, where the ratio could lose digits), the token takes
     the log-space formula exp(log alpha + log beta - log Z) instead, as crf's numpy code does.
+    Entry (row, j) of the chunk is at buffer index row_base[row] + j * row_stride[row] (block: the
+    chunk's first index in the buffers). sums (n,) is scratch.
     """
-    n_labels = beta.shape[0]
-    for col in range(rows.size):
+    n_labels, n_cols = alpha.shape
+    sums[:] = 0.0
+    for j in range(n_labels):
+        a = alpha[j]
+        b = beta[j]
+        for col in range(n_cols):
+            sums[col] += a[col] * b[col]
+    for col in range(n_cols):
         row = rows[col]
         label = labels[row]
-        beta_shift_flat[row] = beta_shift[col]
-        total = 0.0
-        for j in range(n_labels):
-            value = beta[j, col]
-            beta_flat[row, j] = value
-            total += alpha_flat[row, j] * value
+        total = sums[col]
         if total >= _SAFE_SUM:
-            marginal = alpha_flat[row, label] * beta[label, col] / total
+            marginal = alpha[label, col] * beta[label, col] / total
         else:
-            marginal = np.exp(np.log(alpha_flat[row, label]) + np.log(beta[label, col]) + alpha_shift_flat[row]
+            marginal = np.exp(np.log(alpha[label, col]) + np.log(beta[label, col]) + alpha_shift[col]
                               + beta_shift[col] - log_z[seq_of_col[col]])
         confidence[row] = marginal if marginal < 1.0 else 1.0
+        row_base[row] = block + col
+        row_stride[row] = n_cols
+        alpha_shift_flat[row] = alpha_shift[col]
+        beta_shift_flat[row] = beta_shift[col]
 
 
 @_jit_cached
@@ -481,21 +474,25 @@ def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
 
     E (N, L) emissions, emission_exp (N, L) = exp(E - peak[:, None]), peak (N,) = `row_peaks(E)`,
     lengths (B,); trans (L, L), start (L,), end (L,) masked.
-    Returns labels (N,), scores (B,), alpha (N, L) and alpha_shift (N,) with log_alpha = log(alpha) +
-    alpha_shift[:, None], likewise beta and beta_shift, log Z (B,), suspect (B,) bool: sequences
-    whose scaled values are not trustworthy (redo them with `exact_forward_backward`), and confidence
-    (N,): the marginal of each token's decoded label (not meaningful in suspect sequences). Empty
-    sequences get score 0 and log Z 0.
+    Returns labels (N,), scores (B,), alpha (N * L,) and beta (N * L,) buffers, row_base (N,) and
+    row_stride (N,): the scaled alpha of token t, label j is alpha[row_base[t] + j * row_stride[t]]
+    (each chunk's packed (L, n) block, left in place: writing them out row by row cost as much as
+    the recursions), alpha_shift (N,) with log_alpha[t, j] = log(that) + alpha_shift[t], likewise beta
+    and beta_shift, log Z (B,), suspect (B,) bool: sequences whose scaled values are not trustworthy
+    (redo them with `exact_forward_backward`), and confidence (N,): the marginal of each token's
+    decoded label (not meaningful in suspect sequences). Empty sequences get score 0 and log Z 0.
     """
     n_tokens, n_labels = E.shape
     labels = np.zeros(n_tokens, dtype=np.int64)
     scores = np.zeros(lengths.size)
     log_z = np.zeros(lengths.size)
     suspect = np.zeros(lengths.size, dtype=np.bool_)
-    alpha_flat = np.empty((n_tokens, n_labels))
-    beta_flat = np.empty((n_tokens, n_labels))
+    alpha_buffer = np.empty(n_tokens * n_labels)
+    beta_buffer = np.empty(n_tokens * n_labels)
     alpha_shift_flat = np.empty(n_tokens)
     beta_shift_flat = np.empty(n_tokens)
+    row_base = np.zeros(n_tokens, dtype=np.int64)
+    row_stride = np.ones(n_tokens, dtype=np.int64)
     confidence = np.zeros(n_tokens)
     trans_exp, trans_shift = _exp_shifted(trans)
     start_exp, start_shift = _exp_shifted(start)
@@ -505,38 +502,44 @@ def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
     totals = np.empty(_TILE)
     lows = np.empty(_TILE)
     offsets = _offsets(lengths)
+    block = 0
     first_seq = 0
     while first_seq < lengths.size:
         end_seq = _chunk_end(lengths, first_seq)
         batch_sizes, step_start, rows, seq_of_col, last_cols, last_seqs = _chunk_layout(
             offsets, lengths, first_seq, end_seq)
         first_seq = end_seq
-        if rows.size == 0:
+        n_cols = rows.size
+        if n_cols == 0:
             continue
         Ep = _gather(E, rows)
         factors = _gather(emission_exp, rows)
         peaks = peak[rows]
-        work = np.empty(Ep.shape)  # Viterbi scores, then alpha, then beta of this chunk
-        shifts = np.empty(rows.size)
-        final_scores = _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end, work, labels)
+        alpha = alpha_buffer[block:block + n_labels * n_cols].reshape((n_labels, n_cols))
+        beta = beta_buffer[block:block + n_labels * n_cols].reshape((n_labels, n_cols))
+        alpha_shift = np.empty(n_cols)
+        beta_shift = np.empty(n_cols)
+        # Viterbi's scores go in beta's block, which the backward pass overwrites afterwards.
+        final_scores = _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end, beta, labels)
         _scaled_forward(Ep, factors, peaks, batch_sizes, step_start, seq_of_col, trans, trans_exp, trans_shift,
-                        start, start_exp, start_shift, work, shifts, suspect, sums, totals, lows)
+                        start, start_exp, start_shift, alpha, alpha_shift, suspect, sums, totals, lows)
         for k in range(last_cols.size):
             col, seq = last_cols[k], last_seqs[k]
             scores[seq] = final_scores[k]
             total = 0.0
             for j in range(n_labels):
-                total += work[j, col] * end_exp[j]
+                total += alpha[j, col] * end_exp[j]
             if not (_TINY <= total < np.inf):
                 suspect[seq] = True
                 total = 1.0
-            log_z[seq] = shifts[col] + end_shift + np.log(total)
-        _unpack(work, shifts, rows, alpha_flat, alpha_shift_flat)
+            log_z[seq] = alpha_shift[col] + end_shift + np.log(total)
         _scaled_backward(Ep, factors, peaks, batch_sizes, step_start, last_cols, seq_of_col, trans, trans_exp,
-                         trans_shift, end, end_exp, end_shift, work, shifts, suspect, sums, weighted, totals, lows)
-        _unpack_beta_and_confidence(work, shifts, rows, seq_of_col, labels, alpha_flat, alpha_shift_flat, log_z,
-                                    beta_flat, beta_shift_flat, confidence)
-    return labels, scores, alpha_flat, alpha_shift_flat, beta_flat, beta_shift_flat, log_z, suspect, confidence
+                         trans_shift, end, end_exp, end_shift, beta, beta_shift, suspect, sums, weighted, totals, lows)
+        _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_col, labels, log_z, block,
+                                np.empty(n_cols), confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat)
+        block += n_labels * n_cols
+    return (labels, scores, alpha_buffer, beta_buffer, row_base, row_stride, alpha_shift_flat, beta_shift_flat,
+            log_z, suspect, confidence)
 
 
 # ----------------------------------------------------------------------------------------------------
