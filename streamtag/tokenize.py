@@ -471,16 +471,19 @@ class BatchTokenizer:
         (P, 3); return the number of rows that stay in the cache after this batch."""
         missing_pieces = list(compress(pieces, missing.tolist()))
         distinct = list(dict.fromkeys(missing_pieces))
-        short = [piece for piece in distinct if len(piece) <= _MAX_CACHED_PIECE]
-        if len(short) < len(distinct):  # cacheable pieces first, so the others can be cut off after
-            distinct = short + [piece for piece in distinct if len(piece) > _MAX_CACHED_PIECE]
         piece_lengths = np.fromiter(map(len, distinct), dtype=np.int64, count=len(distinct))  # (D,)
+        long = piece_lengths > _MAX_CACHED_PIECE
+        n_short = len(distinct) - int(np.count_nonzero(long))
+        if n_short < len(distinct):  # cacheable pieces first, so the others can be cut off after
+            order = np.argsort(long, kind="stable")
+            distinct = [distinct[i] for i in order.tolist()]
+            piece_lengths = piece_lengths[order]
         texts, kinds, starts, ends, n_tokens = _tokenize_pieces(distinct, piece_lengths)
         n_rows = len(texts)
-        n_short_rows = int(n_tokens[: len(short)].sum())
+        n_short_rows = int(n_tokens[:n_short].sum())
         # Clearing the whole cache when it is full keeps memory flat at the cost of one batch of
         # misses per refill; the pieces that matter come back at once.
-        if len(self._entries) + len(short) > self.cache_size or self._n_rows + n_short_rows > self.max_rows:
+        if len(self._entries) + n_short > self.cache_size or self._n_rows + n_short_rows > self.max_rows:
             if self._entries:
                 # Start afresh and look the whole batch up again: the entries found before the
                 # clearing point at rows of the old tables.
@@ -488,7 +491,7 @@ class BatchTokenizer:
                 missing[:] = True
                 return self._add_missing(pieces, entries, missing)
         # A batch with more new pieces than the cache holds keeps as many as fit, not none.
-        n_kept = min(len(short), self.cache_size - len(self._entries))
+        n_kept = min(n_short, self.cache_size - len(self._entries))
         rows_kept = np.cumsum(n_tokens[:n_kept])
         n_kept = int(np.searchsorted(rows_kept, self.max_rows - self._n_rows, side="right"))
         n_kept_rows = int(rows_kept[n_kept - 1]) if n_kept else 0
