@@ -573,19 +573,22 @@ def _tokenize_pieces(pieces: list[str], lengths: np.ndarray) -> tuple[list, list
     code_points = np.frombuffer(bytearray(joined.encode("utf-32-le", "surrogatepass")), dtype=np.uint32)
     starts, ends, kind_codes, unsure = scan(code_points)  # (n,) in joined; (P,)
     piece_starts = _starts_of(lengths)  # (P,) in joined
-    texts = np.fromiter(map(joined.__getitem__, map(slice, starts.tolist(), ends.tolist())), dtype=object,
-                        count=len(starts))
-    kinds = _KIND_NAMES.take(kind_codes)
     if unsure.any():
         unsure_at = np.flatnonzero(unsure)
-        more = _match_pieces(list(compress(pieces, unsure.tolist())), lengths[unsure_at])
-        shift = np.repeat(piece_starts[unsure_at], more[4])
+        pattern_texts, more_kinds, more_starts, more_ends, more_counts = _match_pieces(
+            list(compress(pieces, unsure.tolist())), lengths[unsure_at])
+        del pattern_texts  # cut again below with the others (a huge piece's texts are not held twice)
+        shift = np.repeat(piece_starts[unsure_at], more_counts)
         # Both parts are in joined order; one stable sort by start puts every piece's tokens together.
-        order = np.argsort(np.concatenate((starts, more[2] + shift)), kind="stable")
-        texts = np.concatenate((texts, np.fromiter(more[0], dtype=object, count=len(more[0])))).take(order)
-        kinds = np.concatenate((kinds, np.fromiter(more[1], dtype=object, count=len(more[1])))).take(order)
-        starts = np.concatenate((starts, more[2] + shift)).take(order)
-        ends = np.concatenate((ends, more[3] + shift)).take(order)
+        starts = np.concatenate((starts, more_starts + shift))
+        order = np.argsort(starts, kind="stable")
+        starts = starts[order]
+        ends = np.concatenate((ends, more_ends + shift))[order]
+        more_codes = np.fromiter(map(_KIND_CODE.__getitem__, more_kinds), dtype=np.int8, count=len(more_kinds))
+        kind_codes = np.concatenate((kind_codes, more_codes))[order]
+    # Every text is cut from joined once, in the final order (the pattern's own texts are the same).
+    texts = list(map(joined.__getitem__, map(slice, starts.tolist(), ends.tolist())))
+    kinds = _KIND_NAMES.take(kind_codes)
     token_piece = np.searchsorted(piece_starts, starts, side="right") - 1  # (n,)
     shift = piece_starts[token_piece]
     return texts, kinds, starts - shift, ends - shift, np.bincount(token_piece, minlength=len(pieces))
@@ -624,6 +627,7 @@ def _starts_of(lengths: np.ndarray) -> np.ndarray:
 
 
 _KIND_NAMES = np.array(KINDS, dtype=object)  # kind code (index into KINDS) -> kind
+_KIND_CODE = {kind: code for code, kind in enumerate(KINDS)}
 USE_SCANNER = True  # False: every new piece goes through the pattern (for tests and comparisons)
 _scan = None  # scan_kernels.scan once loaded; False if numba is not available
 
