@@ -569,8 +569,9 @@ def _tokenize_pieces(pieces: list[str], lengths: np.ndarray) -> tuple[list, list
     if scan is None:
         return _match_pieces(pieces, lengths)
     joined = " ".join(pieces)
-    # A writable copy: numba compiles a separate version of the kernel for read-only arrays.
-    code_points = np.frombuffer(bytearray(joined.encode("utf-32-le", "surrogatepass")), dtype=np.uint32)
+    # A numpy copy: writable and aligned, the one signature the kernel is compiled for (numba
+    # compiles another version, mid-stream, for a read-only or misaligned array).
+    code_points = np.frombuffer(joined.encode("utf-32-le", "surrogatepass"), dtype=np.uint32).copy()
     starts, ends, kind_codes, unsure = scan(code_points)  # (n,) in joined; (P,)
     piece_starts = _starts_of(lengths)  # (P,) in joined
     if unsure.any():
