@@ -52,7 +52,7 @@ class WatchConfig:
     review_path: str = "streamtag-review.jsonl"
     review_threshold: float = 0.5  # lines with confidence below this also go to review
     file_mode: int = 0o600  # mode of files the daemon creates
-    batch_max_lines: int = 512
+    batch_max_lines: int = 1000
     batch_max_wait_ms: int = 0  # how long a partial batch waits for more lines (0: group commit)
     state_dir: str = "streamtag-state"
     stats_interval_seconds: float = 60.0
