@@ -21,6 +21,7 @@ are tested against and the fallback (set `USE_KERNELS = False` to force it).
 
 from __future__ import annotations
 
+import importlib
 import threading
 from typing import NamedTuple
 
@@ -29,7 +30,7 @@ import numpy as np
 # Use the compiled kernels of streamtag.crf_kernels for `viterbi`, `decode` and `nbest` if numba imports.
 USE_KERNELS = True
 _kernels = None  # the loaded kernels; False once numba turned out to be unavailable
-_loaded: dict = {}  # crf_kernels loader name -> what it returned, or False (see `compiled`)
+_loaded: dict = {}  # (kernel module, loader name) -> what it returned, or False (see `compiled`)
 _kernels_lock = threading.Lock()
 
 # A scaled sum of exponentials below this may have lost relative precision (sub-normal range) or
@@ -614,28 +615,31 @@ def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, 
     return Decoded(labels, scores, fb, confidence)
 
 
-def compiled(loader: str = "load"):
-    """What ``crf_kernels.<loader>()`` returns (compiled kernels), loaded once per process; None to use
-    the numpy code: USE_KERNELS is off, or numba is missing or broken.
+def compiled(loader: str = "load", module: str = "crf_kernels"):
+    """What ``streamtag.<module>.<loader>()`` returns (compiled kernels), loaded once per process;
+    None to use the numpy (or, for the scanner, regex) code: USE_KERNELS is off, or numba is missing
+    or broken.
 
     Loaded on first use (importing numba and loading cached machine code takes a fraction of a
-    second, which commands that never decode should not pay). `features` gets its emission kernel
-    here too, so there is one way kernels are loaded.
+    second, which commands that never decode should not pay). Every kernel module (`crf_kernels`,
+    `feature_kernels`, `scan_kernels`) is loaded here, so there is one way kernels are loaded and
+    one switch for all of them.
     """
     if not USE_KERNELS:
         return None
-    found = _loaded.get(loader)
+    key = (module, loader)
+    found = _loaded.get(key)
     if found is None:
         with _kernels_lock:
-            found = _loaded.get(loader)
+            found = _loaded.get(key)
             if found is None:
                 try:
-                    from streamtag import crf_kernels
+                    kernels = importlib.import_module(f"streamtag.{module}")
                 except (ImportError, OSError):  # numba missing, or its compiler library fails to load
                     found = False
                 else:
-                    found = getattr(crf_kernels, loader)()
-                _loaded[loader] = found
+                    found = getattr(kernels, loader)()
+                _loaded[key] = found
     return found or None
 
 

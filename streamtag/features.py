@@ -989,24 +989,10 @@ class _AffixTables:
 
 def _feature_kernels():
     """The compiled kernels of the new-type path, (sum_block_rows, affix_rows) of `feature_kernels`,
-    or None for the numpy code (numba missing or broken, or kernels switched off with
-    `crf.USE_KERNELS`, which switches off all compiled kernels)."""
-    global _loaded_kernels
+    or None for the numpy code (see `crf.compiled`)."""
     from streamtag import crf
 
-    if not crf.USE_KERNELS:
-        return None
-    if _loaded_kernels is None:
-        try:
-            from streamtag import feature_kernels
-        except (ImportError, OSError):   # numba missing, or its compiler library fails to load
-            _loaded_kernels = False
-        else:
-            _loaded_kernels = feature_kernels.load()
-    return _loaded_kernels or None
-
-
-_loaded_kernels = None
+    return crf.compiled("load", module="feature_kernels")
 # Marks a non-ASCII type's shape key: its shape block lacks the case flags an ASCII shape's block holds,
 # and no ASCII shape contains this character, so the two kinds of keys never meet.
 _NON_ASCII_MARK = "\uffff"

@@ -34,7 +34,7 @@ from numba.extending import intrinsic
 from streamtag.crf_kernels import _jit, _jit_cached
 from streamtag.tokenize import KINDS
 
-__all__ = ["MAX_PIECE", "RULES_SCANNED", "scan"]
+__all__ = ["MAX_PIECE", "RULES_SCANNED", "scan", "scanner"]
 
 # Longer pieces (base64 blobs, minified JSON) are left to the pattern: rare in logs, and a bound on
 # the piece keeps any rescanning inside a piece cheap whatever the input.
@@ -982,6 +982,12 @@ def _load():
                 scan_kernel(sample, _KIND_CODES)
             _loaded = scan_kernel
     return _loaded
+
+
+def scanner():
+    """`scan`, its kernel compiled or loaded from the cache first (the loader `crf.compiled` calls)."""
+    _load()
+    return scan
 
 
 def scan(code_points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:

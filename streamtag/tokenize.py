@@ -630,19 +630,14 @@ def _starts_of(lengths: np.ndarray) -> np.ndarray:
 _KIND_NAMES = np.array(KINDS, dtype=object)  # kind code (index into KINDS) -> kind
 _KIND_CODE = {kind: code for code, kind in enumerate(KINDS)}
 USE_SCANNER = True  # False: every new piece goes through the pattern (for tests and comparisons)
-_scan = None  # scan_kernels.scan once loaded; False if numba is not available
 
 
 def _scanner():
-    """The compiled scanner (`scan_kernels.scan`), imported on first use (numba takes a while to
-    load, which commands that never tokenize a batch should not pay); None to use the pattern alone."""
-    global _scan
+    """The compiled scanner (`scan_kernels.scan`), loaded on first use by `crf.compiled` (numba takes
+    a while to load, which commands that never tokenize a batch should not pay); None to use the
+    pattern alone."""
     if not USE_SCANNER:
         return None
-    if _scan is None:
-        try:
-            from streamtag.scan_kernels import scan
-        except (ImportError, OSError):  # numba missing, or its compiler library fails to load
-            scan = False
-        _scan = scan
-    return _scan or None
+    from streamtag import crf
+
+    return crf.compiled("scanner", module="scan_kernels")

@@ -478,7 +478,7 @@ def test_nbest_runs_the_kernel(monkeypatch):
     kernels = list(crf._compiled_kernels(np.zeros((1, 2))))
     original = kernels[4]
     kernels[4] = lambda *args: calls.append(args) or original(*args)
-    monkeypatch.setitem(crf._loaded, "load", tuple(kernels))
+    monkeypatch.setitem(crf._loaded, ("crf_kernels", "load"), tuple(kernels))
     labels, scores = crf.nbest(np.array([[1.0, 3.0]]), [1], np.zeros((2, 2)), np.zeros(2), np.zeros(2), 2)
     assert len(calls) == 1
     # one token, no transitions: the paths are the labels, ranked by emission (by hand from the definition)

@@ -894,7 +894,9 @@ def test_scanner_takes_the_common_new_pieces(monkeypatch):
 def test_batch_without_numba_uses_the_pattern(monkeypatch):
     # Reference: tokenize per line. A process where numba cannot be imported (the loader found
     # nothing) still tokenizes every batch, with the pattern alone.
-    monkeypatch.setattr(tokenize_module, "_scan", False)
+    from streamtag import crf
+
+    monkeypatch.setitem(crf._loaded, ("scan_kernels", "scanner"), False)
     assert tokenize_module._scanner() is None
     lines = [" ".join(MIXED_PIECES), "plain words only", ""]
     assert _batch_per_line(BatchTokenizer(), lines) == [tokenize(line) for line in lines]
