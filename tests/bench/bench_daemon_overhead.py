@@ -138,8 +138,8 @@ class _MeasuredDaemon(Daemon):
             self.loop_ended, self.cpu_ended = time.perf_counter(), time.process_time()
             self.stand_in = STAND_IN_CPU[0] - stand_in_before
 
-    def _write_with_retry(self, pending) -> int:
-        code = super()._write_with_retry(pending)
+    def _write_with_retry(self, pending, overlap: bool) -> int:
+        code = super()._write_with_retry(pending, overlap)
         self.written = getattr(self, "written", 0) + len(pending)
         if self.written >= self.expected:
             self.stop_requested = True
