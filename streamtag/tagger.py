@@ -90,6 +90,7 @@ class Tagger:
         self.tokenizer = BatchTokenizer()
         self.scorer = EmissionScorer(self.extractor, self.emission, cache_size=SCORE_CACHE_TYPES)
         self.entity_types = [label[2:] for label in model.labels if label.startswith("B-")]
+        self._type_names = np.array(self.entity_types, dtype=object)  # (types,) for gathers by type index
         self.b_index = np.array([model.labels.index("B-" + t) for t in self.entity_types], dtype=np.int64)
         self.i_index = np.array([model.labels.index("I-" + t) for t in self.entity_types], dtype=np.int64)
 
@@ -195,14 +196,15 @@ class Tagger:
         span_token = line_offsets[span_line] + span_first
         char_start = tokens.starts[span_token].tolist()
         char_end = tokens.ends[span_token + (span_stop - span_first) - 1].tolist()
-        results = [TaggedLine(text=line, spans=[], confidence=conf, n_tokens=n)
-                   for line, conf, n in zip(lines, line_min.tolist(), line_lengths.tolist())]
-        # One Python step per span (not per token): spans are what the output is made of.
-        entity_types = self.entity_types
-        for line_index, start, end, type_index, conf in zip(span_line.tolist(), char_start, char_end,
-                                                            span_type.tolist(), span_conf.tolist()):
-            results[line_index].spans.append(TaggedSpan(start, end, entity_types[type_index],
-                                                        lines[line_index][start:end], conf))
+        # Spans come ordered by line: each line takes a slice of the batch's spans. Every step is a
+        # C-level map over the batch's spans or lines (a Python loop per span cost ~1.5 us a span).
+        span_texts = list(map(str.__getitem__, map(lines.__getitem__, span_line.tolist()),
+                              map(slice, char_start, char_end)))
+        spans = list(map(TaggedSpan, char_start, char_end, self._type_names.take(span_type).tolist(), span_texts,
+                         span_conf.tolist()))
+        bounds = np.searchsorted(span_line, np.arange(len(lines) + 1)).tolist()
+        results = list(map(TaggedLine, lines, map(spans.__getitem__, map(slice, bounds[:-1], bounds[1:])),
+                           line_min.tolist(), line_lengths.tolist()))
         if batch.token_index is not None:
             for line_index in np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist():
                 results[line_index].flags.append("split")
