@@ -109,10 +109,12 @@ class Tagger:
             type_rows = type_rows[batch.token_index]
         emissions = self.scorer.emissions(type_rows, batch.lengths)
         decoded = crf.decode(emissions, batch.lengths, self.trans, self.start, self.end)
-        results = self._assemble(lines, tokens, batch, decoded, emissions)
+        results, line_confidence = self._assemble(lines, tokens, batch, decoded, emissions)
         if review_below is not None:
-            self._describe_weakest(results, tokens, batch, decoded, review_below)
-            self._add_runner_up(results, tokens, batch, emissions, decoded.fb, review_below)
+            doubtful = np.flatnonzero(line_confidence < review_below)  # (D,) lines, usually a few in a hundred
+            if doubtful.size:
+                self._describe_weakest(results, tokens, batch, decoded, doubtful)
+                self._add_runner_up(results, tokens, batch, emissions, decoded.fb, doubtful)
         return results
 
     # -- cutting lines into sequences -------------------------------------------------------------
@@ -171,8 +173,10 @@ class Tagger:
         pos_in_line = np.arange(batch.lengths.sum()) - seq_offsets[seq_of_token] + batch.seq_first_token[seq_of_token]
         return (pos_in_line >= batch.owned_from[seq_of_token]) & (pos_in_line < batch.owned_to[seq_of_token])
 
-    def _assemble(self, lines, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded, emissions) -> list[TaggedLine]:
-        """Label paths of the sequences -> spans and confidences per line, vectorised over the batch.
+    def _assemble(self, lines, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded,
+                  emissions) -> tuple[list[TaggedLine], np.ndarray]:
+        """Label paths of the sequences -> spans and confidences per line, vectorised over the batch;
+        also the lines' confidences (B,) as an array.
 
         Windows of a split line overlap; each token's label comes from the window that owns it, so
         the owned tokens, in order, are exactly the lines' tokens. Chunks are read off that merged
@@ -208,7 +212,7 @@ class Tagger:
         if batch.token_index is not None:
             for line_index in np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist():
                 results[line_index].flags.append("split")
-        return results
+        return results, line_min
 
     def _span_confidence(self, batch, fb, emissions, line_conf, line_offsets,
                          span_line, span_first, span_stop, span_type) -> np.ndarray:
@@ -238,17 +242,16 @@ class Tagger:
         return conf
 
     def _describe_weakest(self, results, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded,
-                          review_below: float) -> None:
-        """Name what set the confidence of each line going to review: its weakest span, else token.
-
-        Only lines under the threshold need a reason, so this runs on few lines; the token is found
-        on the line's owned tokens (the windows' overlap never decides a label).
-        """
+                          doubtful: np.ndarray) -> None:
+        """Name what set the confidence of each doubtful line (``doubtful`` (D,) line indices, those
+        going to review): its weakest span, else its weakest token (found on the line's owned tokens:
+        the windows' overlap never decides a label)."""
         line_labels = self._owned(batch, decoded.labels)
         line_conf = self._owned(batch, decoded.confidence)
         line_offsets = np.cumsum(tokens.counts) - tokens.counts
-        for line_index, result in enumerate(results):
-            if result.confidence >= review_below or result.n_tokens == 0:
+        for line_index in doubtful.tolist():
+            result = results[line_index]
+            if result.n_tokens == 0:
                 continue
             weakest_span = min(result.spans, key=lambda span: span.confidence, default=None)
             if weakest_span is not None and weakest_span.confidence <= result.confidence:
@@ -262,27 +265,33 @@ class Tagger:
 
     # -- runner-up labelling for doubtful lines -----------------------------------------------------
 
-    def _add_runner_up(self, results, tokens: TokenBatch, batch: _Batch, emissions, fb, review_below: float) -> None:
-        """Second-best path for lines under the threshold (only those: n-best costs k times Viterbi).
+    def _add_runner_up(self, results, tokens: TokenBatch, batch: _Batch, emissions, fb, doubtful: np.ndarray) -> None:
+        """Second-best path for the doubtful lines (``doubtful`` (D,) line indices; only those: n-best
+        costs k times Viterbi).
 
         Split lines get none: the second-best path of one window is not a labelling of the line.
         """
-        single = np.bincount(batch.seq_line, minlength=len(results)) == 1
-        doubtful_line = np.array([r.confidence < review_below for r in results]) & single
-        doubtful_seq = doubtful_line[batch.seq_line]
-        if not doubtful_seq.any():
+        if batch.token_index is None:  # one sequence per line: a line's index is its sequence's
+            seqs = doubtful
+        else:
+            single = np.bincount(batch.seq_line, minlength=len(results)) == 1
+            is_doubtful = np.zeros(len(results), dtype=bool)
+            is_doubtful[doubtful] = True
+            seqs = np.flatnonzero((is_doubtful & single)[batch.seq_line])
+        if not seqs.size:
             return
-        sub_lengths = batch.lengths[doubtful_seq]
-        seq_of_token = np.repeat(np.arange(batch.lengths.size), batch.lengths)
-        paths, scores = crf.nbest(emissions[doubtful_seq[seq_of_token]], sub_lengths, self.trans, self.start,
-                                  self.end, 2)
-        second = paths[1]
+        sub_lengths = batch.lengths[seqs]
+        seq_offsets = np.cumsum(batch.lengths) - batch.lengths
         sub_offsets = np.cumsum(sub_lengths) - sub_lengths
+        # (sum of sub_lengths,) flat rows of the chosen sequences' tokens, in order
+        sub_tokens = np.arange(int(sub_lengths.sum())) + np.repeat(seq_offsets[seqs] - sub_offsets, sub_lengths)
+        paths, scores = crf.nbest(emissions[sub_tokens], sub_lengths, self.trans, self.start, self.end, 2)
+        second = paths[1]
         has_second = (sub_lengths > 0) & (second[np.minimum(sub_offsets, max(second.size - 1, 0))] >= 0)
-        probability = np.where(has_second, np.exp(scores[:, 1] - fb.log_z[doubtful_seq]), 0.0)
+        probability = np.where(has_second, np.exp(scores[:, 1] - fb.log_z[seqs]), 0.0)
         sp_seq, sp_first, sp_stop, sp_type = spans_from_label_ids(np.maximum(second, 0), sub_lengths,
                                                                   self.model.labels)
-        lines_of_sub = batch.seq_line[doubtful_seq].tolist()
+        lines_of_sub = batch.seq_line[seqs].tolist()
         for k, line_index in enumerate(lines_of_sub):
             results[line_index].runner_up = []
             results[line_index].runner_up_probability = float(probability[k])

@@ -148,3 +148,14 @@ def _token_types(result, token_starts):
             if span.start <= start < span.end:
                 types[t] = span.label
     return types
+
+
+def test_split_lines_get_no_runner_up_and_others_keep_theirs(tagger):
+    # The second-best path of one window is not a labelling of the whole line (README, review queue).
+    long_line = " ".join(("login failed for kestrel from 192.0.2.14 " * 5).split())
+    split = Tagger(tagger.model, max_tokens=12, window_overlap=4)
+    short, long_result, empty = split.tag(["relay-07 down", long_line, ""], review_below=1.01)
+    assert "split" in long_result.flags and long_result.runner_up is None and long_result.weakest
+    [alone] = tagger.tag(["relay-07 down"], review_below=1.01)
+    assert short.runner_up == alone.runner_up and short.runner_up_probability == alone.runner_up_probability
+    assert empty.runner_up == [] and empty.runner_up_probability == 0.0  # no tokens: no second path
