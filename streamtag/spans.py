@@ -184,27 +184,27 @@ def spans_from_label_ids(
     n_tokens = ids.shape[0]
     if lengths.sum() != n_tokens:
         raise ValueError(f"lengths sum to {lengths.sum()}, label_ids has {n_tokens} entries")
-    seq_of_token = np.repeat(np.arange(lengths.shape[0], dtype=np.int64), lengths)
-    offsets = np.cumsum(lengths) - lengths
-    is_sequence_start = np.zeros(n_tokens, dtype=bool)
-    is_sequence_start[offsets[lengths > 0]] = True
-
-    is_entity = ids > 0
-    is_inside = is_entity & (ids % 2 == 0)
-    type_of_token = (ids - 1) // 2
-    # An I-X continues a chunk when the previous token (same sequence) is B-X or I-X.
-    prev_type = np.concatenate(([-1], np.where(is_entity, type_of_token, -1)[:-1]))
-    continues = is_inside & ~is_sequence_start & (prev_type == type_of_token)
-    chunk_starts = np.flatnonzero(is_entity & ~continues)
-    # A chunk runs until the next token that does not continue it (or the end of the batch).
-    breaks = np.concatenate((np.flatnonzero(~continues), [n_tokens]))
-    chunk_stops = breaks[np.searchsorted(breaks, chunk_starts, side="right")]
-    seq = seq_of_token[chunk_starts]
+    seq_ends = np.cumsum(lengths)  # (B,) end of each sequence in the flat layout
+    # Only entity tokens matter (about one in six in logs): two passes over the batch, then work on
+    # those alone.
+    entity = np.flatnonzero(ids > 0)  # (M,) flat positions of B-/I- tokens
+    entity_ids = ids[entity]
+    type_of_entity = (entity_ids - 1) // 2
+    seq = np.searchsorted(seq_ends, entity, side="right")  # (M,) sequence of each entity token
+    # An I-X continues a chunk when the token just before it, in the same sequence, is B-X or I-X.
+    continues = np.zeros(entity.size, dtype=bool)
+    continues[1:] = ((entity_ids[1:] % 2 == 0) & (entity[1:] - 1 == entity[:-1])
+                     & (seq[1:] == seq[:-1]) & (type_of_entity[1:] == type_of_entity[:-1]))
+    chunk_first = np.flatnonzero(~continues)  # (S,) index into entity of each chunk's first token
+    # A chunk runs over its first token and every continuing one after it: to the next chunk's first.
+    chunk_stop_entity = np.append(chunk_first[1:], entity.size)[: chunk_first.size] - 1  # last entity token of each chunk
+    chunk_seq = seq[chunk_first]
+    offsets = seq_ends[chunk_seq] - lengths[chunk_seq]
     return (
-        seq,
-        chunk_starts - offsets[seq],
-        chunk_stops - offsets[seq],
-        type_of_token[chunk_starts],
+        chunk_seq,
+        entity[chunk_first] - offsets,
+        entity[chunk_stop_entity] + 1 - offsets,
+        type_of_entity[chunk_first],
     )
 
 
