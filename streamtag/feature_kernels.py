@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import threading
 import warnings
+from collections.abc import Callable
+from typing import NamedTuple
 
 import numba
 import numpy as np
@@ -92,29 +94,157 @@ def affix_rows(codes, starts, lengths, table_lengths, table_is_prefix, bits, tag
                 slot = (slot + 1) & probe_mask
 
 
+# FNV-1a (64-bit): a byte-at-a-time hash of a type's key; the table's slot comes from its top bits
+# after the multiplicative step above, so the weak low bits of FNV do not matter.
+_FNV_OFFSET = np.uint64(0xCBF29CE484222325)
+_FNV_PRIME = np.uint64(0x100000001B3)
+# Mixed in between a key's text and its kind, so that ("ab", "c") and ("a", "bc") hash apart.
+_KIND_MARK = np.uint64(0xFF)
+# Fields of a slot of the type index (one row of `slots`, so that a probe reads one cache line).
+SLOT_HASH, SLOT_ROW, SLOT_START, SLOT_LENGTHS = 0, 1, 2, 3
+
+
+@_jit_cached
+def split_at_nul(data, starts, ends):
+    """Cut ``data`` (D,) uint8, texts joined by one NUL byte each, into starts, ends (n,): the number
+    of pieces found (n + 1 or more when a text itself holds a NUL: then starts and ends are unusable).
+    An empty ``data`` is one empty piece."""
+    n = starts.shape[0]
+    piece = 0
+    start = 0
+    for i in range(data.shape[0]):
+        if data[i] == 0:
+            if piece < n:
+                starts[piece] = start
+                ends[piece] = i
+            piece += 1
+            start = i + 1
+    if piece < n:
+        starts[piece] = start
+        ends[piece] = data.shape[0]
+    return piece + 1
+
+
+@_jit
+def _key_hash(texts, text_start, text_end, kinds, kind_start, kind_end):
+    """FNV-1a of a type's key: its text's bytes, a mark, its kind's bytes."""
+    h = _FNV_OFFSET
+    for i in range(text_start, text_end):
+        h = (h ^ np.uint64(texts[i])) * _FNV_PRIME
+    h = (h ^ _KIND_MARK) * _FNV_PRIME
+    for i in range(kind_start, kind_end):
+        h = (h ^ np.uint64(kinds[i])) * _FNV_PRIME
+    return h
+
+
+@_jit_cached
+def place_types(texts, text_starts, text_ends, kinds, kind_starts, kind_ends, slots, hash_bits, arena, state,
+                limit, longest_kept, rows, firsts):
+    """Find each token's type (text, kind) in the type index, giving new types the next rows.
+
+    texts, kinds (D,) uint8: the tokens' texts and kinds in UTF-8, token t's at [starts[t], ends[t]);
+    slots (H, 4) int64, H = 2**hash_bits >= 2 * limit: open addressing, linear probing, a slot being
+    (hash, row, key start in arena, text length << 32 | kind length), row 0 meaning empty;
+    arena (A,) uint8 the kept keys' bytes (text then kind); state (2,) int64: rows in use (the next
+    row to give; row 0 is the boundary row) and arena bytes in use, updated; limit: rows may not reach
+    it; a text longer than ``longest_kept`` bytes is given a row but not kept (each of its tokens is a
+    new type). Writes rows (N,) each token's row and firsts[:M] the token that brought each new row,
+    in row order; returns M, or -1 when the rows or the arena ran out (the index is then spoiled: the
+    caller empties it and asks again).
+    """
+    hash_shift = np.uint64(64 - hash_bits)
+    probe_mask = slots.shape[0] - 1
+    n_rows, used = state[0], state[1]
+    n_new = 0
+    for t in range(text_starts.shape[0]):
+        a, b, c, d = text_starts[t], text_ends[t], kind_starts[t], kind_ends[t]
+        h = _key_hash(texts, a, b, kinds, c, d)
+        lengths = ((b - a) << 32) | (d - c)
+        slot = np.int64((h * _GOLDEN) >> hash_shift)
+        signed_hash = np.int64(h)
+        row = 0
+        while True:
+            found = slots[slot, SLOT_ROW]
+            if found == 0:
+                break
+            if slots[slot, SLOT_HASH] == signed_hash and slots[slot, SLOT_LENGTHS] == lengths:
+                at = slots[slot, SLOT_START]
+                same = True
+                for i in range(b - a):
+                    if arena[at + i] != texts[a + i]:
+                        same = False
+                        break
+                if same:
+                    at += b - a
+                    for i in range(d - c):
+                        if arena[at + i] != kinds[c + i]:
+                            same = False
+                            break
+                if same:
+                    row = found
+                    break
+            slot = (slot + 1) & probe_mask
+        if row == 0:
+            if n_rows >= limit:
+                return -1
+            row = n_rows
+            n_rows += 1
+            firsts[n_new] = t
+            n_new += 1
+            if b - a <= longest_kept:
+                if used + (b - a) + (d - c) > arena.shape[0]:
+                    return -1
+                arena[used : used + b - a] = texts[a:b]
+                arena[used + b - a : used + b - a + d - c] = kinds[c:d]
+                slots[slot, SLOT_HASH] = signed_hash
+                slots[slot, SLOT_ROW] = row
+                slots[slot, SLOT_START] = used
+                slots[slot, SLOT_LENGTHS] = lengths
+                used += (b - a) + (d - c)
+        rows[t] = row
+    state[0], state[1] = n_rows, used
+    return n_new
+
+
 _LOAD_LOCK = threading.Lock()
 
 
-def _warm_up(sums, affixes) -> None:
+class Kernels(NamedTuple):
+    """The compiled kernels `features` uses."""
+
+    sum_block_rows: Callable
+    affix_rows: Callable
+    split_at_nul: Callable
+    place_types: Callable
+
+
+def _warm_up(kernels: Kernels) -> None:
     """Compile (or load from the cache) the signatures `features` uses, on tiny inputs."""
-    sums(np.zeros((2, 4)), np.array([0, -1], dtype=np.int64), np.array([[1, 0]], dtype=np.int64), 2,
-         np.empty((1, 4)))
+    kernels.sum_block_rows(np.zeros((2, 4)), np.array([0, -1], dtype=np.int64), np.array([[1, 0]], dtype=np.int64),
+                           2, np.empty((1, 4)))
     index = np.zeros(1, dtype=np.int64)
     for codes in (np.zeros(1, dtype=np.uint8), np.zeros(1, dtype=np.uint32)):
-        affixes(codes, index, index + 1, index + 1, np.ones(1, dtype=np.bool_), 7, 60,
-                np.full(2, EMPTY_KEY), np.zeros(2, dtype=np.int64), 1, np.empty((1, 1), dtype=np.int64))
+        kernels.affix_rows(codes, index, index + 1, index + 1, np.ones(1, dtype=np.bool_), 7, 60,
+                           np.full(2, EMPTY_KEY), np.zeros(2, dtype=np.int64), 1, np.empty((1, 1), dtype=np.int64))
+    data = np.frombuffer(b"a", dtype=np.uint8)
+    kernels.split_at_nul(data, np.empty(1, dtype=np.int64), np.empty(1, dtype=np.int64))
+    kernels.place_types(data, index, index + 1, data, index, index + 1, np.zeros((4, 4), dtype=np.int64), 2,
+                        np.zeros(4, dtype=np.uint8), np.ones(2, dtype=np.int64), 2, 1, np.empty(1, dtype=np.int64),
+                        np.empty(1, dtype=np.int64))
 
 
-def load():
-    """(sum_block_rows, affix_rows), compiled (from the cache when it can be read, else compiled
-    afresh, silently)."""
-    global sum_block_rows, affix_rows
+_KERNELS = ("sum_block_rows", "affix_rows", "split_at_nul", "place_types")
+
+
+def load() -> Kernels:
+    """The kernels, compiled (from the cache when it can be read, else compiled afresh, silently)."""
     with _LOAD_LOCK, warnings.catch_warnings():
         warnings.simplefilter("ignore", numba.NumbaWarning)
+        kernels = Kernels(*(globals()[name] for name in _KERNELS))
         try:
-            _warm_up(sum_block_rows, affix_rows)
+            _warm_up(kernels)
         except Exception:  # noqa: BLE001 - a cache fault; a real compile error recurs below and is raised
-            sum_block_rows = _jit(sum_block_rows.py_func)
-            affix_rows = _jit(affix_rows.py_func)
-            _warm_up(sum_block_rows, affix_rows)
-        return sum_block_rows, affix_rows
+            kernels = Kernels(*(_jit(kernel.py_func) for kernel in kernels))
+            _warm_up(kernels)
+            globals().update(zip(_KERNELS, kernels))
+        return kernels

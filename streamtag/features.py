@@ -952,7 +952,7 @@ class _AffixTables:
         kernels = _feature_kernels()
         if kernels is not None:
             rows = np.empty((len(lowers), len(self.tables)), dtype=np.int64)
-            kernels[1](codes, starts, lengths, self.lengths, self.is_prefix, bits, self.tag_shift,
+            kernels.affix_rows(codes, starts, lengths, self.lengths, self.is_prefix, bits, self.tag_shift,
                        *self.hashed(bits), rows)
         else:
             rows = self.rows_numpy(codes, bits, lengths, starts)
@@ -988,8 +988,8 @@ class _AffixTables:
 
 
 def _feature_kernels():
-    """The compiled kernels of the new-type path, (sum_block_rows, affix_rows) of `feature_kernels`,
-    or None for the numpy code (see `crf.compiled`)."""
+    """The compiled kernels of the scorer (`feature_kernels.Kernels`), or None for the numpy code and
+    dict lookups (see `crf.compiled`)."""
     from streamtag import crf
 
     return crf.compiled("load", module="feature_kernels")
@@ -1123,7 +1123,7 @@ class _TypeScorer:
         flat = out.reshape(n_types, self.width)
         kernels = _feature_kernels()
         if kernels is not None:
-            kernels[0](self.blocks, self.slot_masks, rows, self.weights.shape[1], flat)
+            kernels.sum_block_rows(self.blocks, self.slot_masks, rows, self.weights.shape[1], flat)
         else:
             self._sum_numpy(rows, flat)
 
@@ -1366,6 +1366,51 @@ def _collapsed(shapes: list[str]) -> list[str]:
 
 _NO_KIND = object()   # the kind of table rows that hold no type: unequal to any kind a token has
 
+# Key bytes the compiled type index keeps per row it can hold, to begin with (a key is a text and its
+# kind in UTF-8: about a dozen bytes in logs; the index grows when a batch needs more).
+_KEY_BYTES_PER_ROW = 48
+
+
+@dataclass
+class _TypeIndex:
+    """The compiled type index's arrays (see `feature_kernels.place_types`): (text, kind) -> table row."""
+
+    slots: np.ndarray       # (H, 4) int64, H = 2**hash_bits >= 2 * limit
+    hash_bits: int
+    arena: np.ndarray       # (A,) uint8 kept keys' bytes
+    state: np.ndarray       # (2,) int64: rows in use (the boundary row 0 counted), arena bytes in use
+    limit: int              # rows stay below this
+
+    @classmethod
+    def sized(cls, old: _TypeIndex | None, rows: int, key_bytes: int, tokens: int) -> _TypeIndex:
+        """An empty index for ``rows`` rows (or ``tokens`` + 1 if more) and ``key_bytes`` key bytes at
+        least, reusing ``old``'s memory where it is big enough."""
+        limit = max(rows, tokens + 1)
+        hash_bits = max(2 * limit - 1, 1).bit_length()
+        if old is not None and old.hash_bits >= hash_bits:
+            old.slots[:, 1] = 0                                 # row 0: an empty slot
+            slots, hash_bits = old.slots, old.hash_bits
+        else:
+            slots = np.zeros((1 << hash_bits, 4), dtype=np.int64)
+        arena_size = max(limit * _KEY_BYTES_PER_ROW, key_bytes)
+        arena = old.arena if old is not None and old.arena.size >= arena_size else np.zeros(arena_size, np.uint8)
+        return cls(slots, hash_bits, arena, np.array([1, 0], dtype=np.int64), limit)
+
+
+def _joined_bytes(texts: Sequence[str], split_at_nul) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """texts in UTF-8 (surrogates kept: the bytes stand for the str exactly), as (bytes (D,) uint8,
+    starts (N,), ends (N,)): joined by NUL and cut by the compiled splitter, or, when a text holds a
+    NUL (rare), encoded one by one."""
+    n = len(texts)
+    data = np.frombuffer(_JOIN.join(texts).encode("utf-8", "surrogatepass"), dtype=np.uint8)
+    starts, ends = np.empty(n, dtype=np.int64), np.empty(n, dtype=np.int64)
+    if split_at_nul(data, starts, ends) == n:
+        return data, starts, ends
+    encoded = [text.encode("utf-8", "surrogatepass") for text in texts]
+    ends = np.cumsum(np.fromiter(map(len, encoded), dtype=np.int64, count=n))
+    starts = ends - np.fromiter(map(len, encoded), dtype=np.int64, count=n)
+    return np.frombuffer(b"".join(encoded), dtype=np.uint8), starts, ends
+
 
 def _pick(items: Sequence, picked: list[int]) -> Sequence:
     """items[i] for i in picked, as a tuple made in C (a list comprehension costs about twice as much)."""
@@ -1425,10 +1470,16 @@ class EmissionScorer:
         rows[ids >= 0] = self.weights[ids[ids >= 0]]
         return rows
 
-    def _reset(self, capacity: int) -> None:
-        # Two indexes to the rows: by text, for the first kind a text came with (almost every text only
-        # ever has one), so that one C-level map per batch finds nearly every token; and by (text,
-        # kind id) for a text's other kinds, looked up only for tokens whose text came with another kind.
+    def _reset(self, capacity: int, compiled: bool | None = None, key_bytes: int = 0, tokens: int = 0) -> None:
+        """Forget every type (the table keeps its memory). ``compiled``: index the types with the
+        compiled type index (None: as before); ``key_bytes``, ``tokens``: make that index room for a
+        batch of this many tokens and key bytes at least."""
+        if compiled is None:
+            compiled = getattr(self, "_index", None) is not None
+        # Without kernels, two dict indexes to the rows: by text, for the first kind a text came with
+        # (almost every text only ever has one), so that one C-level map per batch finds nearly every
+        # token; and by (text, kind id) for a text's other kinds, looked up only for tokens whose text
+        # came with another kind.
         self.row_of_text: dict[str, int] = {}
         self.row_of_type: dict[tuple[str, int], int] = {}
         self.n_rows = 1
@@ -1436,17 +1487,26 @@ class EmissionScorer:
             # Keep the table: it refills to the same size, and freeing and regrowing it would make
             # resident memory rise and fall with every refill instead of staying flat.
             self.kind_of_row[1:] = _NO_KIND
-            return
-        self.table = np.zeros((capacity, self.n_slots, self.n_labels))     # (capacity, K, L)
-        self.kind_of_row = np.full(capacity, _NO_KIND, dtype=object)      # (capacity,) kind
-        boundary = self.constant_rows[self.rows.boundary_base:]
-        self.table[self._BOUNDARY, 1:] = boundary                           # slot k -> offsets[k]
+        else:
+            self.table = np.zeros((capacity, self.n_slots, self.n_labels))     # (capacity, K, L)
+            self.kind_of_row = np.full(capacity, _NO_KIND, dtype=object)      # (capacity,) kind
+            boundary = self.constant_rows[self.rows.boundary_base:]
+            self.table[self._BOUNDARY, 1:] = boundary                           # slot k -> offsets[k]
+        self._index = _TypeIndex.sized(getattr(self, "_index", None), self.cache_size + 1, key_bytes, tokens) \
+            if compiled else None
+        if compiled:
+            self._grow(self._index.limit)
 
     def type_rows(self, texts: list[str], kinds: list[str]) -> np.ndarray:
         """(N,) int64 table row of each token's type, scoring the types not seen before."""
         n = len(texts)
         if len(kinds) != n:
             raise DataError(f"{n} tokens but {len(kinds)} kinds")
+        kernels = _feature_kernels()
+        if (kernels is not None) != (self._index is not None):
+            self._reset(capacity=self.table.shape[0], compiled=kernels is not None)   # switched: start afresh
+        if kernels is not None:
+            return self._placed_rows(texts, kinds, kernels)
         rows = np.fromiter(map(self.row_of_text.get, texts, repeat(self._BOUNDARY)), dtype=np.int64, count=n)
         # Kinds compared as objects: building the object array (none if ``kinds`` is one already) and
         # comparing (equal strings, mostly the very same objects) costs about half of a dict lookup per
@@ -1461,6 +1521,45 @@ class EmissionScorer:
             rows[:] = self._BOUNDARY
         picked = other.tolist()
         rows[other] = self._other_rows(_pick(texts, picked), _pick(kinds, picked), rows[other] != self._BOUNDARY)
+        return rows
+
+    def _placed_rows(self, texts: list[str], kinds: list[str], kernels) -> np.ndarray:
+        """`type_rows` by the compiled type index: every token's (text, kind) found by one kernel over
+        the batch's UTF-8 bytes (a dict lookup per token cost three times as much), the new types
+        given the next rows in order of first appearance, then scored together."""
+        n = len(texts)
+        rows = np.empty(n, dtype=np.int64)
+        if n == 0:
+            return rows
+        text_bytes, text_starts, text_ends = _joined_bytes(texts, kernels.split_at_nul)
+        kind_bytes, kind_starts, kind_ends = _joined_bytes(kinds, kernels.split_at_nul)
+        firsts = np.empty(n, dtype=np.int64)
+        index = self._index
+        first = index.state[0]
+        found = -1
+        for fresh in (False, True):
+            if fresh:
+                # Out of rows or key bytes: start afresh, with room for the whole batch at least.
+                self._reset(capacity=self.table.shape[0], compiled=True,
+                            key_bytes=text_bytes.size + kind_bytes.size, tokens=n)
+                index, first = self._index, 1
+            found = kernels.place_types(text_bytes, text_starts, text_ends, kind_bytes, kind_starts, kind_ends,
+                                        index.slots, index.hash_bits, index.arena, index.state, index.limit,
+                                        _MAX_CACHED_CHARS, rows, firsts)
+            if found >= 0:
+                break
+        if found < 0:
+            raise AssertionError("the type index has room for a whole batch after a fresh start")
+        if found:
+            picked = firsts[:found].tolist()
+            new_kinds = _pick(kinds, picked)
+            kind_ids = np.fromiter(map(self._kind_ids.get, new_kinds, repeat(-1)), dtype=np.int64, count=found)
+            for m in np.flatnonzero(kind_ids < 0).tolist():    # a kind seen for the first time
+                kind_ids[m] = self._kind_id(new_kinds[m])
+            self._grow(first + found)
+            self.type_scorer.scores(_pick(texts, picked), kind_ids, self._kind_names,
+                                    out=self.table[first : first + found])
+        self.n_rows = first + found
         return rows
 
     def _kind_id(self, kind: str) -> int:

@@ -590,7 +590,10 @@ def test_emission_scorer_scores_long_texts_without_keeping_them():
         expected, lengths = _reference_emissions(extractor, batch, weights)
         np.testing.assert_allclose(scorer.emissions(scorer.type_rows(*_flat(batch)), lengths), expected,
                                    rtol=0, atol=1e-9)
-    assert long_text not in scorer.row_of_text and scorer.n_rows <= 10 + 3
+    assert scorer.n_rows <= 10 + 3
+    roomy = EmissionScorer(extractor, weights)
+    before, after = roomy.type_rows(*_flat(batch)), roomy.type_rows(*_flat(batch))
+    assert before[0] == after[0] and before[1] != after[1]    # "a" kept, the long text scored anew
 
 
 def test_emission_scorer_empty_and_bad_input():
@@ -726,7 +729,8 @@ def test_emission_scorer_long_texts_with_two_kinds(texts, cache_size):
 @given(long_affix_specs(), st.lists(wide_batches(), min_size=1, max_size=2), st.integers(0, 2**32 - 1))
 def test_compiled_type_scores_equal_the_numpy_code(cfg, batch_list, seed):
     # The compiled affix lookup finds the same rows as the numpy search, and the compiled block sums add
-    # in the numpy code's order: the two tables are equal bit for bit. (Both equal scipy's product, above.)
+    # in the numpy code's order: every token's scores are equal bit for bit, though the compiled type
+    # index may number the types in another order than the dicts. (Both equal scipy's product, above.)
     from streamtag import crf
     from streamtag.features import _feature_kernels
 
@@ -740,8 +744,7 @@ def test_compiled_type_scores_equal_the_numpy_code(cfg, batch_list, seed):
         rows = compiled.type_rows(*_flat(batch))
         crf.USE_KERNELS = False
         try:
-            assert np.array_equal(plain.type_rows(*_flat(batch)), rows)
+            plain_rows = plain.type_rows(*_flat(batch))
         finally:
             crf.USE_KERNELS = switch
-    assert compiled.n_rows == plain.n_rows
-    assert np.array_equal(compiled.table[: compiled.n_rows], plain.table[: plain.n_rows])
+        assert np.array_equal(compiled.table[rows], plain.table[plain_rows])
