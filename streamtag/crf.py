@@ -512,7 +512,7 @@ def viterbi(E, lengths, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
         labels, scores = _viterbi_packed(pk.to_packed(E), pk, trans, start, end)
         return labels[pk.packed_of_flat], scores
     lengths = _writable(_check_lengths(lengths, E.shape[0]))
-    return kernels[2](_writable(E), lengths, *_kernel_weights(E, trans, start, end))
+    return kernels[1](_writable(E), lengths, *_kernel_weights(E, trans, start, end))
 
 
 def _viterbi_packed(Ep: np.ndarray, pk: _Packing, trans, start, end) -> tuple[np.ndarray, np.ndarray]:
@@ -585,12 +585,8 @@ def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, 
     The kernel gives each token's confidence; logs of alpha and beta are left to `ScaledForwardBackward`
     (taken only for the entries a caller asks for).
     """
-    row_peaks, decode_flat, _, exact_forward_backward = kernels[:4]
-    peak = row_peaks(E)
-    with np.errstate(invalid="ignore"):  # a token without a finite emission: the kernel flags it
-        emission_exp = np.exp(E - peak[:, None])
-    labels, scores, *scaled, log_z, suspect, confidence = decode_flat(E, emission_exp, peak, lengths, trans, start,
-                                                                       end)
+    decode_flat, _, exact_forward_backward = kernels[:3]
+    labels, scores, *scaled, log_z, suspect, confidence = decode_flat(E, lengths, trans, start, end)
     redo = np.flatnonzero(suspect)
     if not redo.size:
         return Decoded(labels, scores, ScaledForwardBackward(E.shape[1], *scaled, log_z, lengths), confidence)
@@ -713,7 +709,7 @@ def nbest(E, lengths, trans, start, end, k: int) -> tuple[np.ndarray, np.ndarray
         # takes the numpy code.
         if not any(np.isnan(a).any() or np.isposinf(a).any() for a in (E, *weights)):
             lengths = _writable(_check_lengths(lengths, E.shape[0]))
-            return kernels[4](_writable(E), lengths, *weights, k)
+            return kernels[3](_writable(E), lengths, *weights, k)
     return _nbest_numpy(E, _Packing(lengths, E.shape[0]), trans, start, end, k)
 
 

@@ -1,7 +1,8 @@
 """Compiled (numba) Viterbi, forward-backward and n-best for the decode hot path; same results as crf.py's numpy code.
 
-The kernels take a flat batch (E (N, L), lengths (B,)) and cut it into chunks of about _CHUNK_TOKENS
-tokens. Each chunk is put in crf's packed layout (time-major, label-major (L, n): the columns of time
+The kernels take a flat batch (E (N, L), lengths (B,)), order its sequences by length and cut them
+into chunks of about _CHUNK_TOKENS tokens (sequences of about one length together: few time steps,
+each wide, so the per-step overhead is paid less often). Each chunk is put in crf's packed layout (time-major, label-major (L, n): the columns of time
 step t are the chunk's sequences still running, longest first) and the per-step loops of `crf` run
 in compiled code: for each next label, for each allowed previous label, one pass over a tile of the
 step's columns. The innermost loop thus runs over sequences, which the compiler turns into SIMD code,
@@ -79,19 +80,74 @@ def _exp_shifted(values):
     return np.exp(values - shift), shift
 
 
-@_jit_cached
-def row_peaks(E):
-    """(N,) maximum of each row of E (N, L), -inf for a row of -inf; NaN entries are skipped here
-    (they make the scaled sums NaN, which the kernels catch)."""
-    n_tokens, n_labels = E.shape
-    peak = np.empty(n_tokens)
-    for row in range(n_tokens):
-        top = _NEG_INF
+# exp(x) for x <= 0 in compiled loops that vectorise (numba calls the C library's exp one value at a
+# time): x = m ln 2 + r with m = round(x / ln 2), |r| <= ln(2) / 2, exp(r) by its Taylor polynomial to
+# degree 13 (truncation below 1e-17 relative), times 2**m built in the exponent bits. Measured within
+# one unit in the last place of the correctly rounded value, as numpy's exp (long double reference).
+_LOG2E = 1.4426950408889634
+# ln 2 split in two (Cody and Waite 1980; the constants of the Cephes library's exp): m * _LN2_HIGH
+# is exact for |m| < 2**11, so r keeps its precision.
+_LN2_HIGH = 6.93145751953125e-01
+_LN2_LOW = 1.42860682030941723212e-06
+# Adding 1.5 * 2**52 rounds a double of magnitude below 2**51 to an integer, which then sits in the
+# low bits of the sum's bit pattern.
+_ROUND = 6755399441055744.0
+_ROUND_BITS = 0x4338000000000000
+# Below this 2**m would leave the normal range; such values (and NaN) take the library's exp.
+_EXP_FLOOR = -708.0
+
+
+@_jit
+def _emission_factors(Ep, peaks, factors, rounded):
+    """factors (L, n) = exp(Ep - peaks) of a packed chunk Ep (L, n), peaks (n,) each column's maximum
+    (-inf if none; NaN entries skipped, they make the scaled sums NaN, which the kernels catch).
+
+    A column without a finite maximum gives NaN factors (the kernels flag it). rounded (L, n) is
+    scratch. Done per chunk while it is in cache: one pass over the batch's emissions fewer.
+    """
+    n_labels, n_cols = Ep.shape
+    peaks[:] = _NEG_INF
+    for j in range(n_labels):
+        for col in range(n_cols):
+            value = Ep[j, col]
+            peaks[col] = value if value > peaks[col] else peaks[col]
+    out_of_range = 0
+    for j in range(n_labels):
+        for col in range(n_cols):
+            x = Ep[j, col] - peaks[col]
+            out_of_range += not x >= _EXP_FLOOR
+            x = x if x >= _EXP_FLOOR else _EXP_FLOOR
+            shifted = x * _LOG2E + _ROUND
+            m = shifted - _ROUND
+            r = x - m * _LN2_HIGH - m * _LN2_LOW
+            p = 1.0 / 6227020800.0
+            p = p * r + 1.0 / 479001600.0
+            p = p * r + 1.0 / 39916800.0
+            p = p * r + 1.0 / 3628800.0
+            p = p * r + 1.0 / 362880.0
+            p = p * r + 1.0 / 40320.0
+            p = p * r + 1.0 / 5040.0
+            p = p * r + 1.0 / 720.0
+            p = p * r + 1.0 / 120.0
+            p = p * r + 1.0 / 24.0
+            p = p * r + 1.0 / 6.0
+            p = p * r + 0.5
+            p = p * r + 1.0
+            factors[j, col] = p * r + 1.0
+            rounded[j, col] = shifted
+    bits = rounded.view(np.int64)
+    for j in range(n_labels):
+        for col in range(n_cols):  # the bits of 2**m: biased exponent m + 1023, zero mantissa
+            bits[j, col] = (bits[j, col] - _ROUND_BITS + 1023) << 52
+    for j in range(n_labels):
+        for col in range(n_cols):
+            factors[j, col] *= rounded[j, col]
+    if out_of_range:
         for j in range(n_labels):
-            value = E[row, j]
-            top = value if value > top else top
-        peak[row] = top
-    return peak
+            for col in range(n_cols):
+                x = Ep[j, col] - peaks[col]
+                if not x >= _EXP_FLOOR:
+                    factors[j, col] = np.exp(x)
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -99,33 +155,39 @@ def row_peaks(E):
 
 
 @_jit
-def _chunk_end(lengths, first_seq):
-    """End (exclusive) of the chunk starting at sequence first_seq: at least one sequence, at most
-    _CHUNK_TOKENS tokens otherwise."""
-    end = first_seq + 1
-    tokens = lengths[first_seq]
-    while end < lengths.size and tokens + lengths[end] <= _CHUNK_TOKENS:
-        tokens += lengths[end]
+def _chunk_end(lengths, order, first):
+    """End (exclusive, in order) of the chunk starting at order[first]: at least one sequence, at
+    most _CHUNK_TOKENS tokens otherwise. order (B,): the sequences by decreasing length, so a chunk
+    holds sequences of about one length (few time steps, wide ones: less overhead per step)."""
+    end = first + 1
+    tokens = lengths[order[first]]
+    while end < order.size and tokens + lengths[order[end]] <= _CHUNK_TOKENS:
+        tokens += lengths[order[end]]
         end += 1
     return end
 
 
 @_jit
-def _chunk_layout(offsets, lengths, first_seq, end_seq):
-    """Packed layout of sequences first_seq..end_seq-1 (crf._Packing, for one chunk).
+def _by_length(lengths):
+    """(B,) sequence indices by decreasing length, ties in index order."""
+    return np.argsort(-lengths, kind="mergesort")
 
-    Sequences sorted by decreasing length; column step_start[t] + r holds time step t of the r-th.
+
+@_jit
+def _chunk_layout(offsets, lengths, seqs):
+    """Packed layout of the sequences seqs (S,), given by decreasing length (crf._Packing, one chunk).
+
+    Column step_start[t] + r holds time step t of seqs[r].
     Returns batch_sizes (T,), step_start (T + 1,), rows (n,) the flat row of each column, seq_of_col
     (n,), last_cols (S,) the last column of each non-empty sequence and last_seqs (S,) its index.
     The order of sequences does not change any result: each column depends on its own sequence only.
     """
-    count = end_seq - first_seq
-    order = np.argsort(-lengths[first_seq:end_seq], kind="mergesort")
-    max_len = lengths[first_seq + order[0]]
+    count = seqs.size
+    max_len = lengths[seqs[0]]
     batch_sizes = np.zeros(max_len, dtype=np.int64)
     n_nonempty = 0
     for r in range(count):
-        n = lengths[first_seq + order[r]]
+        n = lengths[seqs[r]]
         if n > 0:
             n_nonempty += 1
         for t in range(n):
@@ -139,7 +201,7 @@ def _chunk_layout(offsets, lengths, first_seq, end_seq):
     last_cols = np.empty(n_nonempty, dtype=np.int64)
     last_seqs = np.empty(n_nonempty, dtype=np.int64)
     for r in range(n_nonempty):  # non-empty sequences come first in the sorted order
-        seq = first_seq + order[r]
+        seq = seqs[r]
         n = lengths[seq]
         for t in range(n):
             col = step_start[t] + r
@@ -256,16 +318,18 @@ def viterbi_flat(E, lengths, trans, start, end):
     labels = np.zeros(n_tokens, dtype=np.int64)
     scores = np.zeros(lengths.size)
     offsets = _offsets(lengths)
-    first_seq = 0
-    while first_seq < lengths.size:
-        end_seq = _chunk_end(lengths, first_seq)
-        batch_sizes, step_start, rows, _, last_cols, last_seqs = _chunk_layout(offsets, lengths, first_seq, end_seq)
+    order = _by_length(lengths)
+    first = 0
+    while first < order.size:
+        end_of_chunk = _chunk_end(lengths, order, first)
+        batch_sizes, step_start, rows, _, last_cols, last_seqs = _chunk_layout(offsets, lengths,
+                                                                               order[first:end_of_chunk])
         Ep = _gather(E, rows)
         final_scores = _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end,
                                 np.empty(Ep.shape), labels)
         for k in range(last_seqs.size):
             scores[last_seqs[k]] = final_scores[k]
-        first_seq = end_seq
+        first = end_of_chunk
     return labels, scores
 
 
@@ -469,11 +533,10 @@ def _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_c
 
 
 @_jit_cached
-def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
+def decode_flat(E, lengths, trans, start, end):
     """Viterbi and scaled forward-backward over a flat batch, chunk by chunk in the packed layout.
 
-    E (N, L) emissions, emission_exp (N, L) = exp(E - peak[:, None]), peak (N,) = `row_peaks(E)`,
-    lengths (B,); trans (L, L), start (L,), end (L,) masked.
+    E (N, L) emissions, lengths (B,); trans (L, L), start (L,), end (L,) masked.
     Returns labels (N,), scores (B,), alpha (N * L,) and beta (N * L,) buffers, row_base (N,) and
     row_stride (N,): the scaled alpha of token t, label j is alpha[row_base[t] + j * row_stride[t]]
     (each chunk's packed (L, n) block, left in place: writing them out row by row cost as much as
@@ -503,18 +566,20 @@ def decode_flat(E, emission_exp, peak, lengths, trans, start, end):
     lows = np.empty(_TILE)
     offsets = _offsets(lengths)
     block = 0
-    first_seq = 0
-    while first_seq < lengths.size:
-        end_seq = _chunk_end(lengths, first_seq)
+    order = _by_length(lengths)
+    first = 0
+    while first < order.size:
+        end_of_chunk = _chunk_end(lengths, order, first)
         batch_sizes, step_start, rows, seq_of_col, last_cols, last_seqs = _chunk_layout(
-            offsets, lengths, first_seq, end_seq)
-        first_seq = end_seq
+            offsets, lengths, order[first:end_of_chunk])
+        first = end_of_chunk
         n_cols = rows.size
         if n_cols == 0:
             continue
         Ep = _gather(E, rows)
-        factors = _gather(emission_exp, rows)
-        peaks = peak[rows]
+        factors = np.empty(Ep.shape)
+        peaks = np.empty(n_cols)
+        _emission_factors(Ep, peaks, factors, np.empty(Ep.shape))
         alpha = alpha_buffer[block:block + n_labels * n_cols].reshape((n_labels, n_cols))
         beta = beta_buffer[block:block + n_labels * n_cols].reshape((n_labels, n_cols))
         alpha_shift = np.empty(n_cols)
@@ -695,13 +760,12 @@ def nbest_flat(E, lengths, trans, start, end, k):
 _LOAD_LOCK = threading.Lock()
 
 
-def _warm_up(peaks, decode, viterbi, exact, nbest) -> None:
+def _warm_up(decode, viterbi, exact, nbest) -> None:
     """Compile (or load from the cache) the one signature crf uses, on a tiny batch."""
     E = np.zeros((3, 2))
     lengths = np.array([2, 0, 1], dtype=np.int64)
     square, vector = np.zeros((2, 2)), np.zeros(2)
-    peak = peaks(E)
-    decode(E, np.ones((3, 2)), peak, lengths, square, vector, vector)
+    decode(E, lengths, square, vector, vector)
     viterbi(E, lengths, square, vector, vector)
     exact(E, np.array([0, 2, 2], dtype=np.int64), lengths, np.array([0, 1, 2], dtype=np.int64),
           square, vector, vector, np.empty((3, 2)), np.empty((3, 2)), np.zeros(3))
@@ -709,25 +773,24 @@ def _warm_up(peaks, decode, viterbi, exact, nbest) -> None:
 
 
 def load():
-    """(row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat), compiled; call once
+    """(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat), compiled; call once
     before using them.
 
     A cache that cannot be read or written (corrupt files, a folder that became read-only, a full
     disk) must not stop tagging: the kernels are then compiled again without the cache, silently.
     """
-    global row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
+    global decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
     with _LOAD_LOCK, warnings.catch_warnings():
         warnings.simplefilter("ignore", numba.NumbaWarning)
         try:
-            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
+            _warm_up(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
         except Exception:  # noqa: BLE001 - any cache fault; a real compile error recurs below and is raised
-            row_peaks = _jit(row_peaks.py_func)
             decode_flat = _jit(decode_flat.py_func)
             viterbi_flat = _jit(viterbi_flat.py_func)
             exact_forward_backward = _jit(exact_forward_backward.py_func)
             nbest_flat = _jit(nbest_flat.py_func)
-            _warm_up(row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
-        return row_peaks, decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
+            _warm_up(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
+        return decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
 
 
 @_jit_cached

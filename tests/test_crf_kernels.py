@@ -93,12 +93,8 @@ def offsets_of(lengths):
 def suspect_sequences(E, lengths, trans, start, end):
     """The kernel's own verdict: which sequences leave the scaled range (and are redone exactly)."""
     E = np.ascontiguousarray(E, dtype=np.float64)
-    row_peaks, decode_flat = crf._compiled_kernels(E)[:2]
-    peak = row_peaks(E)
-    with np.errstate(invalid="ignore"):
-        emission_exp = np.exp(E - peak[:, None])
-    return decode_flat(E, emission_exp, peak, np.asarray(lengths, dtype=np.int64),
-                       *crf._kernel_weights(E, trans, start, end))[9]
+    decode_flat = crf._compiled_kernels(E)[0]
+    return decode_flat(E, np.asarray(lengths, dtype=np.int64), *crf._kernel_weights(E, trans, start, end))[9]
 
 
 def assert_log_values_equal(mine, theirs, name):
@@ -476,8 +472,8 @@ def assert_nbest_same_as_numpy(E, lengths, trans, start, end, k):
 def test_nbest_runs_the_kernel(monkeypatch):
     calls = []
     kernels = list(crf._compiled_kernels(np.zeros((1, 2))))
-    original = kernels[4]
-    kernels[4] = lambda *args: calls.append(args) or original(*args)
+    original = kernels[3]
+    kernels[3] = lambda *args: calls.append(args) or original(*args)
     monkeypatch.setitem(crf._loaded, ("crf_kernels", "load"), tuple(kernels))
     labels, scores = crf.nbest(np.array([[1.0, 3.0]]), [1], np.zeros((2, 2)), np.zeros(2), np.zeros(2), 2)
     assert len(calls) == 1
@@ -568,20 +564,20 @@ def test_load_recovers_from_a_failing_cache(monkeypatch):
         return original(*kernels)
 
     original = crf_kernels._warm_up
-    saved = (crf_kernels.row_peaks, crf_kernels.decode_flat, crf_kernels.viterbi_flat,
+    saved = (crf_kernels.decode_flat, crf_kernels.viterbi_flat,
              crf_kernels.exact_forward_backward, crf_kernels.nbest_flat)
     monkeypatch.setattr(crf_kernels, "_warm_up", broken_then_working)
     try:
         kernels = crf_kernels.load()
         assert len(calls) == 2
         assert all(new is not old for new, old in zip(kernels, saved))  # rebuilt without the cache
-        viterbi_flat = kernels[2]
+        viterbi_flat = kernels[1]
         labels, scores = viterbi_flat(np.array([[1.0, 3.0], [2.0, 0.0]]), np.array([1, 1]), np.zeros((2, 2)),
                                       np.zeros(2), np.zeros(2))
         np.testing.assert_array_equal(labels, [1, 0])  # each token alone: its best emission
         np.testing.assert_array_equal(scores, [3.0, 2.0])
     finally:
-        (crf_kernels.row_peaks, crf_kernels.decode_flat, crf_kernels.viterbi_flat,
+        (crf_kernels.decode_flat, crf_kernels.viterbi_flat,
          crf_kernels.exact_forward_backward, crf_kernels.nbest_flat) = saved
 
 
@@ -629,7 +625,7 @@ def test_corrupt_cache_files_are_ignored(tmp_path):
     def corrupt(folder):
         folder.mkdir()
         source = Path(crf_kernels.__file__).read_text()
-        for name in ("row_peaks", "decode_flat", "viterbi_flat", "exact_forward_backward", "nbest_flat"):
+        for name in ("decode_flat", "viterbi_flat", "exact_forward_backward", "nbest_flat"):
             line = source.splitlines().index(f"def {name}(" + source.split(f"def {name}(")[1].splitlines()[0]) + 1
             index = folder / f"crf_kernels.{name}-{line}.py{sys.version_info.major}{sys.version_info.minor}.nbi"
             index.write_bytes(b"\x80\x04garbage" * 10)
