@@ -57,6 +57,32 @@ def hash_slot(key: int, hash_bits: int) -> int:
     return ((key * int(_GOLDEN)) & 0xFFFFFFFFFFFFFFFF) >> (64 - hash_bits)
 
 
+@_jit
+def _affix_rows_of(codes, start, length, table_lengths, table_is_prefix, bits, tag_shift, hash_keys, hash_rows,
+                   hash_shift, out, m, column):
+    """`affix_rows` of one type: out[m, column + a] for each table a."""
+    probe_mask = hash_keys.shape[0] - 1
+    width = np.uint64(bits)
+    for a in range(table_lengths.shape[0]):
+        n = table_lengths[a]
+        out[m, column + a] = 0
+        if n > length or n * bits > tag_shift:
+            continue
+        key = np.uint64(a) << np.uint64(tag_shift)
+        for i in range(n):
+            position = start + i if table_is_prefix[a] else start + length - 1 - i
+            key |= np.uint64(codes[position]) << (width * np.uint64(i))
+        slot = np.int64((key * _GOLDEN) >> hash_shift)
+        while True:
+            found = hash_keys[slot]
+            if found == key:
+                out[m, column + a] = hash_rows[slot]
+                break
+            if found == EMPTY_KEY:
+                break
+            slot = (slot + 1) & probe_mask
+
+
 @_jit_cached
 def affix_rows(codes, starts, lengths, table_lengths, table_is_prefix, bits, tag_shift, hash_keys, hash_rows,
                hash_bits, out):
@@ -70,28 +96,9 @@ def affix_rows(codes, starts, lengths, table_lengths, table_is_prefix, bits, tag
     below the tag are left 0 (the caller fills them).
     """
     hash_shift = np.uint64(64 - hash_bits)
-    probe_mask = hash_keys.shape[0] - 1
-    width = np.uint64(bits)
     for m in range(starts.shape[0]):
-        start, length = starts[m], lengths[m]
-        for a in range(table_lengths.shape[0]):
-            n = table_lengths[a]
-            out[m, a] = 0
-            if n > length or n * bits > tag_shift:
-                continue
-            key = np.uint64(a) << np.uint64(tag_shift)
-            for i in range(n):
-                position = start + i if table_is_prefix[a] else start + length - 1 - i
-                key |= np.uint64(codes[position]) << (width * np.uint64(i))
-            slot = np.int64((key * _GOLDEN) >> hash_shift)
-            while True:
-                found = hash_keys[slot]
-                if found == key:
-                    out[m, a] = hash_rows[slot]
-                    break
-                if found == EMPTY_KEY:
-                    break
-                slot = (slot + 1) & probe_mask
+        _affix_rows_of(codes, starts[m], lengths[m], table_lengths, table_is_prefix, bits, tag_shift, hash_keys,
+                       hash_rows, hash_shift, out, m, 0)
 
 
 # FNV-1a (64-bit): a byte-at-a-time hash of a type's key; the table's slot comes from its top bits
@@ -137,6 +144,36 @@ def _key_hash(texts, text_start, text_end, kinds, kind_start, kind_end):
     return h
 
 
+@_jit
+def _find(slots, hash_bits, arena, h, texts, a, b, kinds, c, d):
+    """(row, slot) of the key (texts[a:b], kinds[c:d]) of hash h in a type index (see `place_types`):
+    row 0 when it is not there, with the empty slot where it would go."""
+    probe_mask = slots.shape[0] - 1
+    lengths = ((b - a) << 32) | (d - c)
+    slot = np.int64((h * _GOLDEN) >> np.uint64(64 - hash_bits))
+    signed_hash = np.int64(h)
+    while True:
+        found = slots[slot, SLOT_ROW]
+        if found == 0:
+            return 0, slot
+        if slots[slot, SLOT_HASH] == signed_hash and slots[slot, SLOT_LENGTHS] == lengths:
+            at = slots[slot, SLOT_START]
+            same = True
+            for i in range(b - a):
+                if arena[at + i] != texts[a + i]:
+                    same = False
+                    break
+            if same:
+                at += b - a
+                for i in range(d - c):
+                    if arena[at + i] != kinds[c + i]:
+                        same = False
+                        break
+            if same:
+                return found, slot
+        slot = (slot + 1) & probe_mask
+
+
 @_jit_cached
 def place_types(texts, text_starts, text_ends, kinds, kind_starts, kind_ends, slots, hash_bits, arena, state,
                 limit, longest_kept, rows, firsts):
@@ -152,38 +189,12 @@ def place_types(texts, text_starts, text_ends, kinds, kind_starts, kind_ends, sl
     in row order; returns M, or -1 when the rows or the arena ran out (the index is then spoiled: the
     caller empties it and asks again).
     """
-    hash_shift = np.uint64(64 - hash_bits)
-    probe_mask = slots.shape[0] - 1
     n_rows, used = state[0], state[1]
     n_new = 0
     for t in range(text_starts.shape[0]):
         a, b, c, d = text_starts[t], text_ends[t], kind_starts[t], kind_ends[t]
         h = _key_hash(texts, a, b, kinds, c, d)
-        lengths = ((b - a) << 32) | (d - c)
-        slot = np.int64((h * _GOLDEN) >> hash_shift)
-        signed_hash = np.int64(h)
-        row = 0
-        while True:
-            found = slots[slot, SLOT_ROW]
-            if found == 0:
-                break
-            if slots[slot, SLOT_HASH] == signed_hash and slots[slot, SLOT_LENGTHS] == lengths:
-                at = slots[slot, SLOT_START]
-                same = True
-                for i in range(b - a):
-                    if arena[at + i] != texts[a + i]:
-                        same = False
-                        break
-                if same:
-                    at += b - a
-                    for i in range(d - c):
-                        if arena[at + i] != kinds[c + i]:
-                            same = False
-                            break
-                if same:
-                    row = found
-                    break
-            slot = (slot + 1) & probe_mask
+        row, slot = _find(slots, hash_bits, arena, h, texts, a, b, kinds, c, d)
         if row == 0:
             if n_rows >= limit:
                 return -1
@@ -196,16 +207,112 @@ def place_types(texts, text_starts, text_ends, kinds, kind_starts, kind_ends, sl
                     return -1
                 arena[used : used + b - a] = texts[a:b]
                 arena[used + b - a : used + b - a + d - c] = kinds[c:d]
-                slots[slot, SLOT_HASH] = signed_hash
+                slots[slot, SLOT_HASH] = np.int64(h)
                 slots[slot, SLOT_ROW] = row
                 slots[slot, SLOT_START] = used
-                slots[slot, SLOT_LENGTHS] = lengths
+                slots[slot, SLOT_LENGTHS] = ((b - a) << 32) | (d - c)
                 used += (b - a) + (d - c)
         rows[t] = row
     state[0], state[1] = n_rows, used
     return n_new
 
 
+# Tags of the value lookups `ascii_part_rows` makes in one index (a key's "kind"): the lower form and
+# its word lists, the cut lower form, the shape, the collapsed shape.
+LOOKUP_WORD, LOOKUP_CUT, LOOKUP_SHAPE, LOOKUP_COLLAPSED = 0, 1, 2, 3
+# Columns of a part row (`features._TypeScorer._part_rows`): shape value, collapsed shape value, shape
+# rest with kind (filled by the caller from the signature), word, then the cut lower form if used, then
+# the affix tables.
+COLUMN_VALUE, COLUMN_COLLAPSED, COLUMN_CLASS, COLUMN_WORD, COLUMN_CUT = 0, 1, 2, 3, 4
+
+
+@_jit
+def _lookup(slots, hash_bits, arena, values, texts, a, b, tags, tag):
+    """values[row] of the key (texts[a:b], tag) in a lookup index, or 0 if absent."""
+    h = _key_hash(texts, a, b, tags, tag, tag + 1)
+    row, _ = _find(slots, hash_bits, arena, h, texts, a, b, tags, tag, tag + 1)
+    return values[row]
+
+
+@_jit_cached
+def ascii_part_rows(texts, starts, ends, shape_of_byte, char_bits, flag_bits, upper_bit, lower_bit, length_bounds,
+                    cut, use_cut, slots, hash_bits, arena, values, tags, table_lengths, table_is_prefix, tag_shift,
+                    affix_keys, affix_values, affix_hash_bits, out, signatures):
+    """The part rows of types of ASCII text (`features._TypeScorer._part_rows`), from their bytes.
+
+    texts (D,) uint8; starts, ends (M,) each type's text; shape_of_byte (256,) uint8 the ASCII word
+    shape of each byte; char_bits (129,) int64 and flag_bits, upper_bit, lower_bit: the signature's
+    bits (`features._shape_signatures`); length_bounds (B,) ascending; cut: the value cut (chars);
+    use_cut: whether a long lower form has its cut value's block; slots, hash_bits, arena, values,
+    tags: a lookup index (keys: a value's UTF-8 bytes tagged LOOKUP_*, values (V,) store rows); then
+    the affix tables (see `affix_rows`, 7 bits per code point). Writes out (M, P) (the class column
+    left 0) and signatures (M,) each shape's signature code; returns the number of types that are
+    not plain ASCII (a byte >= 128 or a NUL; their rows are unusable and their signatures -1: the
+    caller scores them its own way).
+    """
+    longest = 0
+    for m in range(starts.shape[0]):
+        longest = max(longest, ends[m] - starts[m])
+    shape = np.empty(max(longest, 1), dtype=np.uint8)
+    collapsed = np.empty(max(longest, 1), dtype=np.uint8)
+    lower = np.empty(max(longest, 1), dtype=np.uint8)
+    affix_shift = np.uint64(64 - affix_hash_bits)
+    first_affix = out.shape[1] - table_lengths.shape[0]
+    others = 0
+    for m in range(starts.shape[0]):
+        a, n = starts[m], ends[m] - starts[m]
+        plain = True
+        for i in range(n):
+            byte = texts[a + i]
+            if byte == 0 or byte >= 128:
+                plain = False
+                break
+            shape[i] = shape_of_byte[byte]
+            lower[i] = byte + 32 if 65 <= byte <= 90 else byte
+        if not plain:
+            others += 1
+            signatures[m] = -1
+            continue
+        # The signature: flag characters present, first "X", title case (no cased character before
+        # an "X", one before each "x", at least one cased), ASCII, length bucket.
+        present = 0
+        broken = False
+        cased_before = False
+        n_collapsed = 0
+        for i in range(n):
+            code = shape[i]
+            present |= char_bits[code]
+            is_upper, is_lower = code == 88, code == 120      # "X", "x"
+            if (is_upper and cased_before) or (is_lower and not cased_before):
+                broken = True
+            cased_before = is_upper or is_lower
+            if i == 0 or code != shape[i - 1]:
+                collapsed[n_collapsed] = code
+                n_collapsed += 1
+        signature = 0
+        if n:
+            title = (present & (upper_bit | lower_bit)) != 0 and not broken
+            signature = present | (np.int64(shape[0] == 88) << flag_bits) | (np.int64(title) << (flag_bits + 1))
+        bucket = 0
+        while bucket < length_bounds.shape[0] and length_bounds[bucket] < n:
+            bucket += 1
+        signatures[m] = signature | (np.int64(1) << (flag_bits + 2)) | (np.int64(bucket) << (flag_bits + 3))
+        out[m, COLUMN_VALUE] = _lookup(slots, hash_bits, arena, values, shape, 0, min(n, cut), tags, LOOKUP_SHAPE)
+        out[m, COLUMN_COLLAPSED] = _lookup(slots, hash_bits, arena, values, collapsed, 0, min(n_collapsed, cut),
+                                           tags, LOOKUP_COLLAPSED)
+        out[m, COLUMN_CLASS] = 0
+        word = _lookup(slots, hash_bits, arena, values, lower, 0, n, tags, LOOKUP_WORD)
+        out[m, COLUMN_WORD] = word
+        if use_cut:
+            out[m, COLUMN_CUT] = _lookup(slots, hash_bits, arena, values, lower, 0, cut, tags, LOOKUP_CUT) \
+                if n > cut and word == 0 else 0
+        if table_lengths.shape[0]:
+            _affix_rows_of(lower, 0, n, table_lengths, table_is_prefix, 7, tag_shift, affix_keys, affix_values,
+                           affix_shift, out, m, first_affix)
+    return others
+
+
+_LOAD_LOCK = threading.Lock()
 _LOAD_LOCK = threading.Lock()
 
 
@@ -216,6 +323,7 @@ class Kernels(NamedTuple):
     affix_rows: Callable
     split_at_nul: Callable
     place_types: Callable
+    ascii_part_rows: Callable
 
 
 def _warm_up(kernels: Kernels) -> None:
@@ -231,9 +339,15 @@ def _warm_up(kernels: Kernels) -> None:
     kernels.place_types(data, index, index + 1, data, index, index + 1, np.zeros((4, 4), dtype=np.int64), 2,
                         np.zeros(4, dtype=np.uint8), np.ones(2, dtype=np.int64), 2, 1, np.empty(1, dtype=np.int64),
                         np.empty(1, dtype=np.int64))
+    table_lengths = np.ones(1, dtype=np.int64)
+    kernels.ascii_part_rows(data, index, index + 1, np.zeros(256, dtype=np.uint8), np.zeros(129, dtype=np.int64), 11,
+                            2, 4, np.ones(1, dtype=np.int64), 4, True, np.zeros((4, 4), dtype=np.int64), 2,
+                            np.zeros(4, dtype=np.uint8), np.zeros(2, dtype=np.int64), data, table_lengths,
+                            np.ones(1, dtype=np.bool_), 60, np.full(2, EMPTY_KEY), np.zeros(2, dtype=np.int64), 1,
+                            np.empty((1, 6), dtype=np.int64), np.empty(1, dtype=np.int64))
 
 
-_KERNELS = ("sum_block_rows", "affix_rows", "split_at_nul", "place_types")
+_KERNELS = ("sum_block_rows", "affix_rows", "split_at_nul", "place_types", "ascii_part_rows")
 
 
 def load() -> Kernels:

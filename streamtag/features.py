@@ -1094,6 +1094,9 @@ class _TypeScorer:
         self.signature_of = np.zeros(64, dtype=np.int64)
         self.class_of = np.full((64, 4), -1, dtype=np.int64)
         self._reset_shapes()
+        self.length_bounds = np.asarray(spec.length_bounds if use["length"] else (), dtype=np.int64)   # (B,)
+        self._lookups: _TypeIndex | None = None       # the compiled value lookups, made on first use
+        self.lookup_values = np.zeros(1, dtype=np.int64)
 
     def _reset_shapes(self) -> None:
         """Forget the cached shape blocks (bounded: they refill with the shapes in use)."""
@@ -1106,13 +1109,22 @@ class _TypeScorer:
 
     # -- a batch of new types --
 
-    def scores(self, texts: list[str], kind_ids: np.ndarray, kind_names: list[str], out: np.ndarray) -> None:
-        """Write the (M, K, L) score blocks of the M types (texts[m], kind_names[kind_ids[m]]) into out."""
+    def scores(self, texts: Sequence[str], kind_ids: np.ndarray, kind_names: list[str], out: np.ndarray,
+               encoded: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> None:
+        """Write the (M, K, L) score blocks of the M types (texts[m], kind_names[kind_ids[m]]) into out.
+
+        ``encoded``: the texts in UTF-8 if the caller has them, (bytes (D,) uint8, starts (M,), ends (M,))."""
         n_types = len(texts)
         if n_types == 0:
             return
-        if self.n_shapes + n_types > self.limit:
+        if self.n_shapes + len(self.signature_shapes) + n_types > self.limit:
             self._reset_shapes()
+        flat = out.reshape(n_types, self.width)
+        kernels = _feature_kernels()
+        if kernels is not None:
+            rows = self._compiled_rows(texts, kind_ids, kind_names, encoded, kernels)
+            kernels.sum_block_rows(self.blocks, self.slot_masks, rows, self.weights.shape[1], flat)
+            return
         joined = _JOIN.join(texts)
         holds_separator = joined.count(_JOIN) != n_types - 1
         if joined.isascii() and not holds_separator:
@@ -1120,12 +1132,84 @@ class _TypeScorer:
             rows = self._part_rows(shapes, lowers, kind_ids, kind_names, [(codes, 7, n_types)], False)
         else:
             rows = self._mixed_rows(texts, kind_ids, kind_names, holds_separator)
-        flat = out.reshape(n_types, self.width)
-        kernels = _feature_kernels()
-        if kernels is not None:
-            kernels.sum_block_rows(self.blocks, self.slot_masks, rows, self.weights.shape[1], flat)
+        self._sum_numpy(rows, flat)
+
+    def _compiled_rows(self, texts: Sequence[str], kind_ids: np.ndarray, kind_names: list[str],
+                       encoded: tuple[np.ndarray, np.ndarray, np.ndarray] | None, kernels) -> np.ndarray:
+        """(M, P) store rows, as `_part_rows` / `_mixed_rows` give them: the ASCII types' parts found
+        by one compiled pass over their bytes (shape, collapsed shape and signature, lower form, value
+        lookups, affixes: the Python and numpy passes cost several times more), the others' the
+        Python way."""
+        n_types = len(texts)
+        data, starts, ends = encoded if encoded is not None else _joined_bytes(texts, kernels.split_at_nul)
+        affixes = self.affixes
+        if affixes is not None:
+            table_lengths, table_is_prefix, tag_shift = affixes.lengths, affixes.is_prefix, affixes.tag_shift
+            affix_keys, affix_values, affix_hash_bits = affixes.hashed(7)
         else:
-            self._sum_numpy(rows, flat)
+            table_lengths, table_is_prefix, tag_shift = _NO_TABLES
+            affix_keys, affix_values, affix_hash_bits = _NO_AFFIX_HASH
+        rows = np.empty((n_types, _COLUMN_AFFIXES + self.use_lower + table_lengths.size), dtype=np.int64)
+        signatures = np.empty(n_types, dtype=np.int64)
+        lookups = self._lookup_index(kernels)
+        others = kernels.ascii_part_rows(
+            data, starts, ends, _ASCII_SHAPE_CODES, _CHAR_BITS, _SIGNATURE_FLAG_BITS, _UPPER_BIT, _LOWER_BIT,
+            self.length_bounds, self.cut, self.use_lower, lookups.slots, lookups.hash_bits, lookups.arena,
+            self.lookup_values, _LOOKUP_TAGS, table_lengths, table_is_prefix, tag_shift, affix_keys, affix_values,
+            affix_hash_bits, rows, signatures)
+        plain = np.flatnonzero(signatures >= 0) if others else None
+        if others < n_types:
+            picked = slice(None) if plain is None else plain
+            fast_kinds = kind_ids[picked]
+            signature_ids = self._signature_ids(signatures[picked], texts if plain is None else _pick(texts, plain.tolist()))
+            rows[picked, 2] = self._class_rows(signature_ids, fast_kinds, kind_names)
+            if affixes is not None and affixes.packable(7) < int(table_lengths.max()):
+                self._unpackable_affixes(rows, picked, texts if plain is None else _pick(texts, plain.tolist()))
+        if not others:
+            return rows
+        rest = np.flatnonzero(signatures < 0)
+        rest_rows = self._mixed_rows(_pick(texts, rest.tolist()), kind_ids[rest], kind_names, True)
+        full = np.zeros((n_types, rest_rows.shape[1]), dtype=np.int64)
+        full[:, : rows.shape[1]] = rows
+        full[rest] = rest_rows
+        return full
+
+    def _unpackable_affixes(self, rows: np.ndarray, picked, texts: Sequence[str]) -> None:
+        """Fill the affix columns of the tables too long to pack 7-bit code points (one dict lookup per
+        type: never with the default spec)."""
+        lowers = [text.lower() for text in texts]
+        lengths = np.fromiter(map(len, lowers), dtype=np.int64, count=len(lowers))
+        first = rows.shape[1] - len(self.affixes.tables)
+        packable = self.affixes.packable(7)
+        for number, (length, is_prefix, values) in enumerate(self.affixes.tables):
+            if length > packable:
+                cut = slice(length) if is_prefix else slice(-length, None)
+                found = np.fromiter(map(values.get, map(itemgetter(cut), lowers), repeat(0)), dtype=np.int64,
+                                    count=len(lowers))
+                rows[picked, first + number] = np.where(lengths >= length, found, 0)
+
+    def _lookup_index(self, kernels) -> _TypeIndex:
+        """The compiled index of the value blocks (`feature_kernels.LOOKUP_*`), made on first use."""
+        if self._lookups is None:
+            keys, tags, values = [], [], [0]
+            for tag, rows in ((LOOKUP_WORD, self.word_rows), (LOOKUP_CUT, self.cut_rows if self.use_lower else {}),
+                              (LOOKUP_SHAPE, self.shape_value_rows), (LOOKUP_COLLAPSED, self.collapsed_value_rows)):
+                keys += rows
+                tags += [tag] * len(rows)
+                values += rows.values()
+            index = _TypeIndex.sized(None, len(keys) + 1, 0, 0)
+            if keys:
+                data, starts, ends = _joined_bytes(keys, kernels.split_at_nul)
+                tag_starts = np.array(tags, dtype=np.int64)
+                placed, firsts = np.empty(len(keys), dtype=np.int64), np.empty(len(keys), dtype=np.int64)
+                index.arena = np.zeros(data.size + len(keys), dtype=np.uint8)
+                found = kernels.place_types(data, starts, ends, _LOOKUP_TAGS, tag_starts, tag_starts + 1, index.slots,
+                                            index.hash_bits, index.arena, index.state, index.limit, 1 << 62, placed,
+                                            firsts)
+                assert found == len(keys), "lookup keys are distinct"
+            self.lookup_values = np.array(values, dtype=np.int64)    # by index row: rows 1.. in key order
+            self._lookups = index
+        return self._lookups
 
     def _sum_numpy(self, rows: np.ndarray, flat: np.ndarray) -> None:
         """The kernel's sums in numpy, in its order (so equal bit for bit): rows (M, P) -> flat (M, K*L)."""
@@ -1208,9 +1292,13 @@ class _TypeScorer:
             new_shapes = [shapes[n] for n in new.tolist()]
             self._add_shapes(list(dict.fromkeys(new_shapes)), marked)
             ids[new] = np.fromiter(map(shape_ids.__getitem__, new_shapes), dtype=np.int64, count=new.size)
+        return [self.value_of[ids], self.collapsed_of[ids], self._class_rows(self.signature_of[ids], kind_ids, kind_names)]
+
+    def _class_rows(self, signatures: np.ndarray, kind_ids: np.ndarray, kind_names: list[str]) -> np.ndarray:
+        """(M,) store rows of the rest of the shape features with the kind, by signature id and kind id
+        (M,), making the blocks of pairs not met before."""
         if len(kind_names) > self.class_of.shape[1]:
             self.class_of = _grown_to(self.class_of, self.class_of.shape[0], len(kind_names), -1)
-        signatures = self.signature_of[ids]
         rest = self.class_of[signatures, kind_ids]
         missing = np.flatnonzero(rest < 0)
         if missing.size:
@@ -1218,7 +1306,28 @@ class _TypeScorer:
             pairs = np.unique(signatures[missing] * n_kinds + kind_ids[missing])
             self._add_classes(pairs // n_kinds, pairs % n_kinds, kind_names)
             rest[missing] = self.class_of[signatures[missing], kind_ids[missing]]
-        return [self.value_of[ids], self.collapsed_of[ids], rest]
+        return rest
+
+    def _signature_ids(self, codes: np.ndarray, texts: Sequence[str]) -> np.ndarray:
+        """(M,) signature id of ASCII texts (M,) of signature codes (M,) (`_shape_signatures`),
+        numbering codes not met before (their first text's shape stands for them)."""
+        distinct, first_of, signature_of_text = np.unique(codes, return_index=True, return_inverse=True)
+        numbers = self._signature_numbers(distinct, first_of, lambda n: word_shape(texts[n]), lambda n: True)
+        return numbers[signature_of_text.reshape(-1)]
+
+    def _signature_numbers(self, distinct: np.ndarray, first_of: np.ndarray, shape_of, is_ascii_of) -> np.ndarray:
+        """Signature ids of distinct signature codes, numbering new ones with the shape (and ASCII-ness)
+        of their first holder ``first_of``."""
+        numbers = []
+        for code, n in zip(distinct.tolist(), first_of.tolist()):     # a handful per batch
+            number = self.signature_ids.get(code)
+            if number is None:
+                number = self.signature_ids[code] = len(self.signature_shapes)
+                self.signature_shapes.append((shape_of(n), is_ascii_of(n)))   # any shape of it will do
+            numbers.append(number)
+        if len(self.signature_shapes) > self.class_of.shape[0]:
+            self.class_of = _grown_to(self.class_of, 2 * len(self.signature_shapes), self.class_of.shape[1], -1)
+        return np.array(numbers, dtype=np.int64)
 
     def _add_shapes(self, new_shapes: list[str], marked: bool) -> None:
         """Register distinct new shapes: their value rows and their signatures (`_shape_signatures`)."""
@@ -1245,16 +1354,8 @@ class _TypeScorer:
                 count=len(bare))
         codes = _shape_signatures(bare, is_ascii, self.spec.length_bounds if self.use["length"] else ())
         distinct, first_of, signature_of_shape = np.unique(codes, return_index=True, return_inverse=True)
-        numbers = []
-        for code, n in zip(distinct.tolist(), first_of.tolist()):     # a handful per batch
-            number = self.signature_ids.get(code)
-            if number is None:
-                number = self.signature_ids[code] = len(self.signature_shapes)
-                self.signature_shapes.append((bare[n], bool(is_ascii[n])))   # any shape of it will do
-            numbers.append(number)
-        self.signature_of[first : self.n_shapes] = np.array(numbers, dtype=np.int64)[signature_of_shape.reshape(-1)]
-        if len(self.signature_shapes) > self.class_of.shape[0]:
-            self.class_of = _grown_to(self.class_of, 2 * len(self.signature_shapes), self.class_of.shape[1], -1)
+        numbers = self._signature_numbers(distinct, first_of, bare.__getitem__, lambda n: bool(is_ascii[n]))
+        self.signature_of[first : self.n_shapes] = numbers[signature_of_shape.reshape(-1)]
 
     def _add_classes(self, signatures: np.ndarray, kind_ids: np.ndarray, kind_names: list[str]) -> None:
         """Store the blocks of new (signature, kind) pairs: kind, length bucket, shape and case flags."""
@@ -1309,6 +1410,18 @@ _FLAG_CHARS = "dXx-._/:@="
 _OTHER_CHAR = 1 << len(_FLAG_CHARS)
 _CHAR_BITS = np.array([1 << _FLAG_CHARS.index(chr(code)) if chr(code) in _FLAG_CHARS else _OTHER_CHAR
                        for code in range(128)] + [_OTHER_CHAR], dtype=np.int64)      # (129,), 128: non-ASCII
+
+
+# The compiled part rows' constants: the bits `_shape_signatures` packs, the ASCII shape of each byte,
+# the tags of the value lookups, the empty affix tables.
+_SIGNATURE_FLAG_BITS = len(_FLAG_CHARS) + 1
+_UPPER_BIT, _LOWER_BIT = 1 << _FLAG_CHARS.index("X"), 1 << _FLAG_CHARS.index("x")
+_ASCII_SHAPE_CODES = np.frombuffer(_ASCII_SHAPES, dtype=np.uint8).copy()                 # (256,)
+LOOKUP_WORD, LOOKUP_CUT, LOOKUP_SHAPE, LOOKUP_COLLAPSED = 0, 1, 2, 3     # == feature_kernels.LOOKUP_*
+_LOOKUP_TAGS = np.frombuffer(bytes(range(4)), dtype=np.uint8)          # read-only, as the texts' bytes
+_COLUMN_AFFIXES = 4        # part row columns before the cut lower form and the affixes (see _part_rows)
+_NO_TABLES = (np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.bool_), 60)
+_NO_AFFIX_HASH = (np.full(2, np.uint64(0xFFFFFFFFFFFFFFFF)), np.zeros(2, dtype=np.int64), 1)
 
 
 def _shape_signatures(shapes: list[str], is_ascii: np.ndarray, length_bounds: Sequence[int]) -> np.ndarray:
@@ -1557,8 +1670,10 @@ class EmissionScorer:
             for m in np.flatnonzero(kind_ids < 0).tolist():    # a kind seen for the first time
                 kind_ids[m] = self._kind_id(new_kinds[m])
             self._grow(first + found)
+            chosen = firsts[:found]
             self.type_scorer.scores(_pick(texts, picked), kind_ids, self._kind_names,
-                                    out=self.table[first : first + found])
+                                    out=self.table[first : first + found],
+                                    encoded=(text_bytes, text_starts[chosen], text_ends[chosen]))
         self.n_rows = first + found
         return rows
 

@@ -748,3 +748,24 @@ def test_compiled_type_scores_equal_the_numpy_code(cfg, batch_list, seed):
         finally:
             crf.USE_KERNELS = switch
         assert np.array_equal(compiled.table[rows], plain.table[plain_rows])
+
+
+@pytest.mark.parametrize("texts", [["sshd", "", "Host-7", "é"], ["a\x00b", "c", ""], ["\udcff", "naïve", "\x00"], []])
+def test_joined_bytes_cut_each_text_as_python_encodes_it(texts):
+    # Python's own str.encode (UTF-8, surrogates passed: the codec's "surrogatepass" handler) is the
+    # reference for each text's bytes, with and without a NUL inside a text (the joined fast path and
+    # the one-by-one fallback).
+    from streamtag.features import _feature_kernels, _joined_bytes
+
+    data, starts, ends = _joined_bytes(texts, _feature_kernels().split_at_nul)
+    assert [bytes(data[a:b]) for a, b in zip(starts.tolist(), ends.tolist())] == \
+        [text.encode("utf-8", "surrogatepass") for text in texts]
+
+
+def test_value_lookup_tags_agree_with_the_kernels():
+    # features keeps its own copy of the tags so that it need not import numba; both must agree.
+    from streamtag import feature_kernels, features
+
+    assert (features.LOOKUP_WORD, features.LOOKUP_CUT, features.LOOKUP_SHAPE, features.LOOKUP_COLLAPSED) == \
+        (feature_kernels.LOOKUP_WORD, feature_kernels.LOOKUP_CUT, feature_kernels.LOOKUP_SHAPE,
+         feature_kernels.LOOKUP_COLLAPSED)
