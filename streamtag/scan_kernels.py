@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import threading
 import warnings
+from typing import NamedTuple
 
 import numba
 import numpy as np
@@ -34,7 +35,7 @@ from numba.extending import intrinsic
 from streamtag.crf_kernels import _jit, _jit_cached
 from streamtag.tokenize import KINDS
 
-__all__ = ["MAX_PIECE", "RULES_SCANNED", "scan", "scanner"]
+__all__ = ["MAX_PIECE", "RULES_SCANNED", "BatchKernels", "batch_kernels", "scan", "scanner"]
 
 # Longer pieces (base64 blobs, minified JSON) are left to the pattern: rare in logs, and a bound on
 # the piece keeps any rescanning inside a piece cheap whatever the input.
@@ -963,6 +964,270 @@ def scan_kernel(cp, kind_codes):
     return starts[:n].copy(), ends[:n].copy(), kinds[:n].copy(), unsure
 
 
+# ----------------------------------------------------------------------------------------------------
+# The batch tokenizer's piece cache: a hash table of pieces (open addressing over the pieces' code
+# points), and the kernels that look up a batch's pieces, scan the new ones and gather the tokens.
+# `tokenize.BatchTokenizer` owns the arrays and grows them before each call (a kernel never
+# allocates table space, so the table's memory is the caller's to bound).
+
+_FNV_OFFSET = np.uint64(14695981039346656037)  # 64-bit FNV-1a (common practice for short keys)
+_FNV_PRIME = np.uint64(1099511628211)
+# Columns of a cached piece's row in `pieces` (M, 4) int64
+KEY_START, KEY_LENGTH, FIRST_ROW, N_ROWS = range(4)
+UNRESOLVED = -1  # N_ROWS of a piece added this batch and not tokenized yet; in a piece's n_rows: see lookup
+TEMPORARY = -2  # a piece's n_rows: tokenized for this batch only (too long to cache, or no room)
+FULL = 1  # lookup's status: a new piece found no room; clear the cache and look the batch up again
+
+
+@_jit
+def _hash_of(cp, a, b):
+    h = _FNV_OFFSET
+    for i in range(a, b):
+        h = (h ^ np.uint64(cp[i])) * _FNV_PRIME
+    return h
+
+
+@_jit
+def _find(cp, a, b, h, slots, hashes, pieces, arena):
+    """(slot, piece id) of cp[a:b] in the table; piece id -1 if absent (slot is then the free one)."""
+    mask = slots.shape[0] - 1
+    i = np.int64(h & np.uint64(mask))
+    length = b - a
+    while True:
+        found = slots[i]
+        if found < 0:
+            return i, -1
+        if hashes[found] == h and pieces[found, KEY_LENGTH] == length:
+            start = pieces[found, KEY_START]
+            same = True
+            for j in range(length):
+                if arena[start + j] != cp[a + j]:
+                    same = False
+                    break
+            if same:
+                return i, found
+        i = (i + 1) & mask
+
+
+@_jit_cached
+def lookup_kernel(cp, line_lengths, slots, hashes, pieces, arena, table_counts, cache_size, max_cached, may_clear):
+    """Look up every piece of a batch string and add the new ones to the table.
+
+    cp (C,) uint32: the batch's B lines joined by ' '; line_lengths (B,) int64, B >= 1. The table:
+    slots (S,) int64 (S a power of two, -1 free), hashes (M,) uint64 and pieces (M, 4) int64 per
+    piece id, arena (A,) uint32 of the pieces' code points, table_counts [pieces, arena used]; the
+    caller makes room for every piece of the batch (M >= min(cache_size, pieces + C + 1), A >=
+    used + C, S >= 2 M).
+
+    Returns (status, first, n_rows, offsets, per_line, new_starts, new_lengths, new_ids,
+    temp_starts, temp_lengths, misses): per piece of ``cp`` split at ' ' (P,) its first token row and
+    number of rows; or n_rows UNRESOLVED and first its piece id (a piece new to the table: its rows
+    are the caller's to find), or n_rows TEMPORARY and first its index among the temporary pieces;
+    each piece's offset in its line (P,) and pieces per line (B,). The new pieces put in the table
+    (start in cp, length, id) and the temporary ones (start, length), in batch order; misses counts
+    the pieces not found. A new piece that finds the table full (cache_size pieces) is temporary,
+    and if ``may_clear`` the status is FULL: the caller is to clear the table and look up again.
+    """
+    size = cp.shape[0]
+    n_pieces = 1
+    for i in range(size):
+        if cp[i] == 32:
+            n_pieces += 1
+    first = np.empty(n_pieces, dtype=np.int64)
+    n_rows = np.empty(n_pieces, dtype=np.int64)
+    offsets = np.empty(n_pieces, dtype=np.int64)
+    per_line = np.zeros(line_lengths.shape[0], dtype=np.int64)
+    new_starts = np.empty(n_pieces, dtype=np.int64)
+    new_lengths = np.empty(n_pieces, dtype=np.int64)
+    new_ids = np.empty(n_pieces, dtype=np.int64)
+    temp_starts = np.empty(n_pieces, dtype=np.int64)
+    temp_lengths = np.empty(n_pieces, dtype=np.int64)
+    n_new = 0
+    n_temp = 0
+    misses = 0
+    n_cached = table_counts[0]
+    cached_before = n_cached
+    arena_used = table_counts[1]
+    line = 0
+    line_start = 0
+    line_end = line_lengths[0]
+    a = 0
+    p = 0
+    status = 0
+    for i in range(size + 1):
+        if i < size and cp[i] != 32:
+            continue
+        while a > line_end:  # the piece starts a later line (every line has at least one piece)
+            line += 1
+            line_start = line_end + 1
+            line_end = line_start + line_lengths[line]
+        per_line[line] += 1
+        offsets[p] = a - line_start
+        length = i - a
+        if length == 0:
+            first[p] = 0
+            n_rows[p] = 0
+        else:
+            h = _hash_of(cp, a, i)
+            slot, found = _find(cp, a, i, h, slots, hashes, pieces, arena)
+            if found >= 0:
+                if found >= cached_before:
+                    misses += 1
+                if pieces[found, N_ROWS] >= 0:
+                    first[p] = pieces[found, FIRST_ROW]
+                    n_rows[p] = pieces[found, N_ROWS]
+                else:
+                    first[p] = found
+                    n_rows[p] = UNRESOLVED
+            else:
+                misses += 1
+                if length <= max_cached and n_cached >= cache_size and may_clear:
+                    status = FULL  # the caller starts over; the lookups go on only to count misses
+                if length <= max_cached and n_cached < cache_size and status != FULL:
+                    slots[slot] = n_cached
+                    hashes[n_cached] = h
+                    pieces[n_cached, KEY_START] = arena_used
+                    pieces[n_cached, KEY_LENGTH] = length
+                    pieces[n_cached, FIRST_ROW] = 0
+                    pieces[n_cached, N_ROWS] = UNRESOLVED
+                    for j in range(length):
+                        arena[arena_used + j] = cp[a + j]
+                    arena_used += length
+                    new_starts[n_new] = a
+                    new_lengths[n_new] = length
+                    new_ids[n_new] = n_cached
+                    n_new += 1
+                    first[p] = n_cached
+                    n_rows[p] = UNRESOLVED
+                    n_cached += 1
+                else:
+                    temp_starts[n_temp] = a
+                    temp_lengths[n_temp] = length
+                    first[p] = n_temp
+                    n_rows[p] = TEMPORARY
+                    n_temp += 1
+        p += 1
+        a = i + 1
+    table_counts[0] = n_cached
+    table_counts[1] = arena_used
+    return (status, first, n_rows, offsets, per_line, new_starts[:n_new].copy(), new_lengths[:n_new].copy(),
+            new_ids[:n_new].copy(), temp_starts[:n_temp].copy(), temp_lengths[:n_temp].copy(), misses)
+
+
+@_jit_cached
+def rehash_kernel(slots, hashes, n_cached):
+    """Put pieces 0..n_cached-1 into the free table slots (S,) (all -1) by their hashes (M,)."""
+    mask = slots.shape[0] - 1
+    for piece in range(n_cached):
+        i = np.int64(hashes[piece] & np.uint64(mask))
+        while slots[i] >= 0:
+            i = (i + 1) & mask
+        slots[i] = piece
+
+
+@_jit_cached
+def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, first_row, kind_codes):
+    """Tokens of the pieces cp[start:start + length] (K,), as rows first_row, first_row + 1, ...
+
+    Writes each token's start and end in its piece to row_starts and row_ends (the caller has room
+    for one row per character). Returns first (K,) and n_rows (K,) per piece (n_rows -1: unsure,
+    no rows; see `scan`), and per token (T,) its start and end in cp and its kind (index into KINDS).
+    """
+    n_given = piece_starts.shape[0]
+    first = np.empty(n_given, dtype=np.int64)
+    n_rows = np.empty(n_given, dtype=np.int64)
+    total = 0
+    for j in range(n_given):
+        total += piece_lengths[j]
+    starts = np.empty(total, dtype=np.int64)
+    ends = np.empty(total, dtype=np.int64)
+    kinds = np.empty(total, dtype=np.int8)
+    # One piece at a time in a zero-padded buffer, as scan_kernel reads it (a 0 before the piece and
+    # at least _PAD after it).
+    buffer = np.zeros(1 + MAX_PIECE + _PAD, dtype=np.uint8)
+    s = np.intp(buffer.ctypes.data)  # read by _at; buffer stays alive to the end
+    n = 0
+    for j in range(n_given):
+        a = piece_starts[j]
+        length = piece_lengths[j]
+        sure = length <= MAX_PIECE
+        if sure:
+            for q in range(length):
+                c = cp[a + q]
+                if c < 0x21 or c > 0x7E:
+                    sure = False
+                    break
+                buffer[1 + q] = c
+        t0 = n
+        if sure:
+            for q in range(1 + length, 1 + length + _PAD):
+                buffer[q] = 0
+            p = 1
+            while p <= length:
+                rule, e = _match(s, p)
+                if e == _UNSURE:
+                    sure = False
+                    n = t0
+                    break
+                starts[n] = a + p - 1
+                ends[n] = a + e - 1
+                kinds[n] = kind_codes[rule]
+                n += 1
+                p = e
+        if sure:
+            first[j] = first_row + t0
+            n_rows[j] = n - t0
+            for t in range(t0, n):
+                row_starts[first_row + t] = starts[t] - a
+                row_ends[first_row + t] = ends[t] - a
+        else:
+            first[j] = 0
+            n_rows[j] = -1
+    return first, n_rows, starts[:n].copy(), ends[:n].copy(), kinds[:n].copy()
+
+
+@_jit_cached
+def gather_kernel(first, n_rows, offsets, per_line, pieces, temp_first, temp_rows, row_starts, row_ends):
+    """Every token of a batch from its pieces (P,) (see lookup_kernel; the UNRESOLVED ones now
+    resolved in ``pieces``, the TEMPORARY ones by temp_first / temp_rows): rows (N,), starts and
+    ends (N,) in the token's line, tokens per line (B,)."""
+    n_pieces = first.shape[0]
+    total = 0
+    for p in range(n_pieces):
+        r = n_rows[p]
+        if r == UNRESOLVED:
+            r = pieces[first[p], N_ROWS]
+        elif r == TEMPORARY:
+            r = temp_rows[first[p]]
+        total += r
+    rows = np.empty(total, dtype=np.int64)
+    starts = np.empty(total, dtype=np.int64)
+    ends = np.empty(total, dtype=np.int64)
+    counts = np.zeros(per_line.shape[0], dtype=np.int64)
+    t = 0
+    p = 0
+    for line in range(per_line.shape[0]):
+        line_first = t
+        for _ in range(per_line[line]):
+            f = first[p]
+            r = n_rows[p]
+            if r == UNRESOLVED:
+                r = pieces[f, N_ROWS]
+                f = pieces[f, FIRST_ROW]
+            elif r == TEMPORARY:
+                r = temp_rows[f]
+                f = temp_first[f]
+            shift = offsets[p]
+            for q in range(f, f + r):
+                rows[t] = q
+                starts[t] = row_starts[q] + shift
+                ends[t] = row_ends[q] + shift
+                t += 1
+            p += 1
+        counts[line] = t - line_first
+    return rows, starts, ends, counts
+
+
 _LOAD_LOCK = threading.Lock()
 _loaded = None
 
@@ -985,9 +1250,62 @@ def _load():
 
 
 def scanner():
-    """`scan`, its kernel compiled or loaded from the cache first (the loader `crf.compiled` calls)."""
+    """`scan`, its kernel compiled or loaded from the cache first (the loader `crf.compiled` calls);
+    the batch kernels too (see `batch_kernels`), so that one call compiles the whole module."""
     _load()
+    batch_kernels()
     return scan
+
+
+class BatchKernels(NamedTuple):
+    """The compiled kernels of `tokenize.BatchTokenizer`'s piece table."""
+
+    lookup: object  # lookup_kernel
+    rehash: object  # rehash_kernel
+    scan_pieces: object  # scan_pieces_kernel
+    gather: object  # gather_kernel
+    kind_codes: np.ndarray  # scan_pieces' last argument
+
+
+_batch_loaded = None
+
+
+def batch_kernels() -> BatchKernels:
+    """The batch kernels, compiled or loaded from the cache (a loader for `crf.compiled`; a corrupt
+    or read-only cache makes them compile afresh, silently)."""
+    global _batch_loaded, lookup_kernel, rehash_kernel, scan_pieces_kernel, gather_kernel
+    with _LOAD_LOCK, warnings.catch_warnings():
+        if _batch_loaded is None:
+            warnings.simplefilter("ignore", numba.NumbaWarning)
+            try:
+                _try_batch_kernels()
+            except Exception:  # noqa: BLE001 - a cache fault; a real compile error recurs below and is raised
+                lookup_kernel = _jit(lookup_kernel.py_func)
+                rehash_kernel = _jit(rehash_kernel.py_func)
+                scan_pieces_kernel = _jit(scan_pieces_kernel.py_func)
+                gather_kernel = _jit(gather_kernel.py_func)
+                _try_batch_kernels()
+            _batch_loaded = BatchKernels(lookup_kernel, rehash_kernel, scan_pieces_kernel, gather_kernel, _KIND_CODES)
+    return _batch_loaded
+
+
+def _try_batch_kernels() -> None:
+    """Run each batch kernel once on a tiny table with the argument types the tokenizer uses."""
+    cp = np.frombuffer("a 1".encode("utf-32-le"), dtype=np.uint32).copy()
+    slots = np.full(8, -1, dtype=np.int64)
+    hashes = np.zeros(4, dtype=np.uint64)
+    pieces = np.zeros((4, 4), dtype=np.int64)
+    arena = np.zeros(8, dtype=np.uint32)
+    counts = np.zeros(2, dtype=np.int64)
+    found = lookup_kernel(cp, np.array([3], dtype=np.int64), slots, hashes, pieces, arena, counts, 4, 256, False)
+    rehash_kernel(np.full(8, -1, dtype=np.int64), hashes, 2)
+    row_starts = np.zeros(8, dtype=np.int32)
+    row_ends = np.zeros(8, dtype=np.int32)
+    first, n_rows, _, _, _ = scan_pieces_kernel(cp, found[5], found[6], row_starts, row_ends, 0, _KIND_CODES)
+    pieces[found[7], FIRST_ROW] = first
+    pieces[found[7], N_ROWS] = n_rows
+    empty = np.zeros(0, dtype=np.int64)
+    gather_kernel(found[1], found[2], found[3], found[4], pieces, empty, empty, row_starts, row_ends)
 
 
 def scan(code_points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:

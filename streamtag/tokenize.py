@@ -400,7 +400,13 @@ class BatchTokenizer:
     """Tokenize batches of lines exactly as ``tokenize`` does, tokenizing each distinct
     space-separated piece once and reusing it while it stays in the cache.
 
-    The cache is a table of token rows (text, kind, start and end relative to the piece) and a dict
+    With numba (the usual case) the pieces live in a compiled hash table (`_PieceTable`,
+    `scan_kernels.lookup_kernel`): one kernel splits a batch, looks its pieces up and adds the new
+    ones, the scanner tokenizes them (the pattern the pieces it is unsure of), and one kernel gathers
+    every token's row and offsets; Python builds only the new tokens' texts and the batch's lists.
+    Without numba (or with the scanner off at the first batch) the cache is the dict described next.
+
+    The dict cache is a table of token rows (text, kind, start and end relative to the piece) and a dict
     from piece to its first row, number of rows and length, packed as 12 bytes so that a whole
     batch's look-ups join into one numpy array (the lengths give the pieces' offsets). A batch sends
     the pieces not seen yet through the compiled scanner, and those it is unsure of through the
@@ -415,6 +421,9 @@ class BatchTokenizer:
         self.max_rows = _ROWS_PER_PIECE * cache_size
         self.hits = 0  # pieces found in the cache (for benchmarks and stats)
         self.misses = 0  # pieces tokenized
+        # The piece table of the compiled kernels (`_PieceTable`), chosen at the first batch; False:
+        # the dict `_entries` and numpy (numba is missing, or the scanner was off at the start).
+        self._table: _PieceTable | bool | None = None
         self._clear()
 
     def _clear(self) -> None:
@@ -422,6 +431,8 @@ class BatchTokenizer:
         dropped): they refill to the same size, and freeing and regrowing them would make the
         daemon's resident memory rise and fall with every refill instead of staying flat."""
         self._entries: dict[str, bytes] = {}  # cached piece -> first row, rows (2 x int32)
+        if getattr(self, "_table", None):
+            self._table.clear()
         if hasattr(self, "_texts"):
             self._texts[: self._n_rows] = None
             self._kinds[: self._n_rows] = None
@@ -435,7 +446,7 @@ class BatchTokenizer:
     @property
     def cached_pieces(self) -> int:
         """Distinct pieces held in the cache (at most ``cache_size``)."""
-        return len(self._entries)
+        return self._table.n_pieces if self._table else len(self._entries)
 
     def tokenize_lines(self, lines: list[str]) -> TokenBatch:
         """Tokens of every line of ``lines``; per line the same as ``tokenize(line)``."""
@@ -446,6 +457,14 @@ class BatchTokenizer:
         if not lines:
             empty = np.zeros(0, dtype=np.int64)
             return TokenBatch([], [], empty, empty.copy(), empty.copy())
+        if self._table is None:
+            self._table = _PieceTable(self.cache_size) if _scanner() is not None else False
+        if self._table:
+            kernels = _batch_kernels()
+            if kernels is not None:
+                return self._tokenize_with_table(lines, joined, kernels)
+            self._table = False  # the kernels were switched off since: the dict from now on
+            self._clear()
         # Joining with ' ' and splitting at ' ' gives each line's pieces in turn, line.count(' ') + 1
         # of them (a run of k spaces leaves k - 1 empty pieces), whatever else the lines hold.
         pieces = joined.split(" ")
@@ -465,6 +484,83 @@ class BatchTokenizer:
             self._kinds[kept_rows : self._n_rows] = None
             self._n_rows = kept_rows
         return batch
+
+    def _tokenize_with_table(self, lines: list[str], joined: str, kernels) -> TokenBatch:
+        """`tokenize_lines` with the compiled piece table: one kernel splits the batch at ' ', looks
+        every piece up and adds the new ones to the table; the new pieces are scanned (or matched
+        by the pattern where the scanner is unsure) into new rows; one kernel gathers the tokens.
+        Python touches only the new tokens' texts and the gathered rows' texts and kinds."""
+        table = self._table
+        # A numpy copy: writable and aligned, the one signature the kernels are compiled for.
+        code_points = np.frombuffer(joined.encode("utf-32-le", "surrogatepass"), dtype=np.uint32).copy()
+        line_lengths = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
+        if self._n_rows > self.max_rows:  # rows overflow: start afresh (as when the pieces overflow)
+            self._clear()
+        n_pieces = joined.count(" ") + 1
+        misses = None
+        for may_clear in (table.n_pieces > 0, False):
+            table.make_room(n_pieces, len(code_points), kernels)
+            found = kernels.lookup(code_points, line_lengths, table.slots, table.hashes, table.pieces, table.arena,
+                                   table.counts, self.cache_size, _MAX_CACHED_PIECE, may_clear)
+            misses = found[-1] if misses is None else misses  # the pieces the cache did not hold
+            if found[0] != _scan_kernels().FULL:
+                break
+            # Clearing the whole cache when it is full keeps memory flat at the cost of one batch of
+            # misses per refill; the pieces that matter come back at once. The lookup starts over.
+            self._clear()
+        _, first, n_rows, offsets, per_line, new_starts, new_lengths, new_ids, temp_starts, temp_lengths, _ = found
+        if len(new_ids):
+            new_first, new_rows = self._add_rows(joined, code_points, new_starts, new_lengths, kernels)
+            table.pieces[new_ids, _scan_kernels().FIRST_ROW] = new_first
+            table.pieces[new_ids, _scan_kernels().N_ROWS] = new_rows
+        kept_rows = self._n_rows
+        temp_first = temp_rows = _NO_ROWS
+        if len(temp_starts):  # pieces too long to cache, or with no room: rows for this batch only
+            temp_first, temp_rows = self._add_rows(joined, code_points, temp_starts, temp_lengths, kernels)
+        rows, starts, ends, counts = kernels.gather(first, n_rows, offsets, per_line, table.pieces, temp_first,
+                                                    temp_rows, self._starts, self._ends)
+        batch = TokenBatch(self._texts.take(rows).tolist(), self._kinds.take(rows).tolist(), starts, ends, counts)
+        self.misses += misses
+        self.hits += len(first) - misses
+        if self._n_rows > kept_rows:  # let go of this batch's pieces that are not cached
+            self._texts[kept_rows : self._n_rows] = None
+            self._kinds[kept_rows : self._n_rows] = None
+            self._n_rows = kept_rows
+        return batch
+
+    def _add_rows(self, joined: str, code_points: np.ndarray, piece_starts: np.ndarray, piece_lengths: np.ndarray,
+                  kernels) -> tuple[np.ndarray, np.ndarray]:
+        """Tokenize the pieces joined[start:start + length] (K,) into new rows; return each piece's
+        first row and number of rows (K,). The scanner takes the pieces it is sure of, the pattern
+        the others (all of them when the scanner is off)."""
+        self._reserve(int(piece_lengths.sum()))  # a piece has at most one token per character
+        if _scanner() is not None:
+            first, n_rows, token_starts, token_ends, token_kinds = kernels.scan_pieces(
+                code_points, piece_starts, piece_lengths, self._starts, self._ends, self._n_rows, kernels.kind_codes)
+            added = slice(self._n_rows, self._n_rows + len(token_kinds))
+            self._texts[added] = list(map(joined.__getitem__, map(slice, token_starts.tolist(), token_ends.tolist())))
+            self._kinds[added] = _KIND_NAMES.take(token_kinds)
+            self._n_rows = added.stop
+            unsure = n_rows < 0
+        else:
+            first = np.zeros(len(piece_starts), dtype=np.int64)
+            n_rows = np.full(len(piece_starts), -1, dtype=np.int64)
+            unsure = n_rows < 0
+        if unsure.any():
+            unsure_at = np.flatnonzero(unsure)
+            starts = piece_starts[unsure_at]
+            lengths = piece_lengths[unsure_at]
+            pieces = list(map(joined.__getitem__, map(slice, starts.tolist(), (starts + lengths).tolist())))
+            texts, kinds, token_starts, token_ends, counts = _match_pieces(pieces, lengths)
+            added = slice(self._n_rows, self._n_rows + len(texts))
+            self._texts[added] = texts
+            self._kinds[added] = kinds
+            self._starts[added] = token_starts
+            self._ends[added] = token_ends
+            first[unsure_at] = added.start + np.cumsum(counts) - counts
+            n_rows[unsure_at] = counts
+            self._n_rows = added.stop
+        return first, n_rows
 
     def _add_missing(self, pieces: list[str], entries: np.ndarray, missing: np.ndarray) -> int:
         """Tokenize the pieces not in the cache, add their rows and fill in their ``entries``
@@ -627,6 +723,49 @@ def _starts_of(lengths: np.ndarray) -> np.ndarray:
     return np.cumsum(steps) - steps
 
 
+class _PieceTable:
+    """The arrays of the compiled piece table (see `scan_kernels.lookup_kernel`), grown before each
+    batch so that every piece of it fits; bounded by the cache size."""
+
+    def __init__(self, cache_size: int):
+        self.cache_size = cache_size
+        self.slots = np.full(8, -1, dtype=np.int64)  # (S,) piece id or -1, S a power of two
+        self.hashes = np.zeros(0, dtype=np.uint64)  # (M,) per piece id
+        self.pieces = np.zeros((0, 4), dtype=np.int64)  # (M, 4) key start, key length, first row, rows
+        self.arena = np.zeros(0, dtype=np.uint32)  # (A,) the pieces' code points
+        self.counts = np.zeros(2, dtype=np.int64)  # pieces, arena used
+
+    @property
+    def n_pieces(self) -> int:
+        return int(self.counts[0])
+
+    def clear(self) -> None:
+        """Forget every piece (the arrays are kept, as the row tables are)."""
+        self.slots.fill(-1)
+        self.counts[:] = 0
+
+    def make_room(self, n_pieces: int, n_chars: int, kernels) -> None:
+        """Grow the arrays to take ``n_pieces`` new pieces of ``n_chars`` characters in all."""
+        cached, used = self.counts.tolist()
+        most = min(self.cache_size, cached + n_pieces)
+        if most > len(self.hashes):
+            size = min(self.cache_size, max(most, 2 * len(self.hashes)))
+            self.hashes = _grown(self.hashes, size)
+            bigger = np.zeros((size, 4), dtype=np.int64)
+            bigger[: len(self.pieces)] = self.pieces
+            self.pieces = bigger
+        chars = used + min(n_chars, (self.cache_size - cached) * _MAX_CACHED_PIECE)
+        if chars > len(self.arena):
+            self.arena = _grown(self.arena, max(chars, 2 * len(self.arena)))
+        slots = len(self.slots)
+        while slots < 2 * most:  # at most half full: short probes
+            slots *= 2
+        if slots > len(self.slots):
+            self.slots = np.full(slots, -1, dtype=np.int64)
+            kernels.rehash(self.slots, self.hashes, cached)
+
+
+_NO_ROWS = np.zeros(0, dtype=np.int64)
 _KIND_NAMES = np.array(KINDS, dtype=object)  # kind code (index into KINDS) -> kind
 _KIND_CODE = {kind: code for code, kind in enumerate(KINDS)}
 USE_SCANNER = True  # False: every new piece goes through the pattern (for tests and comparisons)
@@ -641,3 +780,18 @@ def _scanner():
     from streamtag import crf
 
     return crf.compiled("scanner", module="scan_kernels")
+
+
+def _batch_kernels():
+    """The compiled kernels of the piece table (`scan_kernels.batch_kernels`), or None (numba is
+    missing, or `crf.USE_KERNELS` is off)."""
+    from streamtag import crf
+
+    return crf.compiled("batch_kernels", module="scan_kernels")
+
+
+def _scan_kernels():
+    """The module `scan_kernels` (imported once the kernels are loaded; numba is slow to import)."""
+    from streamtag import scan_kernels
+
+    return scan_kernels

@@ -325,3 +325,80 @@ def test_linear_time_on_huge_lines(motif):
 
     ratio = reference_corpora._cost_ratio(motif, batch_of_one)
     assert ratio < reference_corpora.LINEAR_RATIO_LIMIT, f"{motif!r}: 100k chars cost {ratio:.1f}x 10k chars"
+
+
+# ------------------------------------------------------------------------------------------------
+# the compiled piece table (scan_kernels' lookup, scan and gather kernels)
+# ------------------------------------------------------------------------------------------------
+# With numba the tokenizer keeps its pieces in a compiled hash table (open addressing, FNV-1a);
+# every check above runs through it. These check the table's own edges, always against tokenize.
+
+import streamtag.tokenize as tokenize_module  # noqa: E402
+
+
+def _needs_table(tokenizer: BatchTokenizer) -> None:
+    if not tokenizer._table:
+        pytest.skip("numba is not available: the batch path uses the dict of pieces")
+
+
+def test_table_grows_and_rehashes_without_losing_pieces():
+    # Reference: tokenize per line. Batches of growing size make the table grow (and rehash) many
+    # times; every piece cached before the growth must still be found after it.
+    tokenizer = BatchTokenizer(cache_size=100_000)
+    seen: list[str] = []
+    for size in (1, 3, 10, 40, 200, 1000, 4000):
+        numbers = range(len(seen), len(seen) + size)
+        lines = [f"id={n} host-{n}.example.test 10.0.{n % 256}.{n // 256 % 256} n{n}" for n in numbers]
+        assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+        _needs_table(tokenizer)
+        seen += lines
+    assert tokenizer.cached_pieces == 4 * len(seen)  # all distinct, all short: every piece kept
+    hits = tokenizer.hits
+    assert_same_as_tokenize(seen, tokenizer.tokenize_lines(seen))
+    assert tokenizer.hits - hits == 4 * len(seen)  # every piece found again
+
+
+def test_table_after_the_scanner_or_the_kernels_are_switched_off(monkeypatch):
+    # Reference: tokenize per line. A tokenizer that started with the kernels keeps giving the same
+    # tokens when the scanner is switched off (new pieces go to the pattern) and when the kernels
+    # are (it falls back to the dict of pieces).
+    from streamtag import crf
+
+    lines = ["user=ann from 192.0.2.1 café", "2001:db8::1 done", "", "  x  "]  # RFC 5737, RFC 3849
+    tokenizer = BatchTokenizer()
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+    _needs_table(tokenizer)
+    monkeypatch.setattr(tokenize_module, "USE_SCANNER", False)
+    more = ["user=bob from 198.51.100.7 Zürich-3", "fe80::1%eth0 done"]
+    assert_same_as_tokenize(more + lines, tokenizer.tokenize_lines(more + lines))
+    monkeypatch.setattr(tokenize_module, "USE_SCANNER", True)
+    monkeypatch.setattr(crf, "USE_KERNELS", False)
+    assert_same_as_tokenize(lines + more, tokenizer.tokenize_lines(lines + more))
+    assert not tokenizer._table and tokenizer.cached_pieces > 0
+
+
+def test_table_repeats_and_unsure_pieces_in_one_batch():
+    # Reference: tokenize per line. A new piece met several times in its first batch (scanned, or
+    # sent to the pattern: an e-mail address, RFC 2606 example domain; a non-ASCII word; a tab) is
+    # tokenized once and found by its later occurrences; long pieces are tokenized for the batch only.
+    blob = "QUJD" * 80  # base64 alphabet, RFC 4648 section 4: over 256 characters, never cached
+    lines = ["a=1 ann@example.com naïve x\ty a=1", f"{blob} ann@example.com a=1 {blob}", "naïve  naïve"]
+    tokenizer = BatchTokenizer()
+    assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+    _needs_table(tokenizer)
+    assert tokenizer.cached_pieces == 4  # a=1, ann@example.com, naïve, x\ty
+    assert_same_as_tokenize(lines[::-1], tokenizer.tokenize_lines(lines[::-1]))
+    assert tokenizer.cached_pieces == 4
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.lists(st.sampled_from(FRAGMENTS), max_size=4).map("".join), min_size=1, max_size=40),
+       st.integers(0, 12))
+def test_property_many_repeated_pieces_through_a_small_table(pieces, cache_size):
+    # Reference: tokenize per line. Few distinct pieces, repeated, through tables of 0 to 12 pieces:
+    # collisions in a small table, pieces new twice in a batch, a table that fills mid-batch.
+    lines = [" ".join(pieces[i::3]) for i in range(3)]
+    tokenizer = BatchTokenizer(cache_size)
+    for _ in range(3):
+        assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
+        assert tokenizer.cached_pieces <= cache_size
