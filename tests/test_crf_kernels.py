@@ -447,6 +447,27 @@ def test_span_log_prob_from_decode_matches_brute_force(extreme):
     assert decoded.fb._log_alpha is None and decoded.fb._log_beta is None
 
 
+def test_span_after_a_label_with_a_tiny_scaled_beta_matches_brute_force():
+    # Token 1 after the span (token 0 as B-a) favours O by 655 in its emission, while end disfavours O
+    # by 655: the candidates after the span weigh exp(-655) each in scaled form (~1e-285, above the
+    # underflow guard, so decode keeps the fast path); span_log_prob must still be exact from those
+    # scaled rows. Reference: brute force (Lafferty et al. 2001) of "token 0 is B-a and token 1 is
+    # not I-a" (IOB2 chunk rules), summed with scipy.special.logsumexp.
+    labels = ["O", "B-a", "I-a"]
+    allowed_trans, allowed_start = crf.bio_allowed(labels)
+    trans, start = crf.apply_mask(np.zeros((3, 3)), np.zeros(3), allowed_trans, allowed_start)
+    E = np.array([[0.0, 0.0, 0.0], [655.0, 0.0, 0.0]])
+    end = np.array([-655.0, 0.0, 0.0])
+    lengths = np.array([2])
+    assert not suspect_sequences(E, lengths, trans, start, end).any()
+    decoded = crf.decode(E, lengths, trans, start, end)
+    got = crf.span_log_prob(decoded.fb, E, lengths, trans, end, [0], [0], [1], 1, 2)
+    paths, scores = brute_force(E, trans, start, end)
+    hit = (paths[:, 0] == 1) & (paths[:, 1] != 2)
+    expected = logsumexp(scores[hit]) - logsumexp(scores)
+    assert abs(got[0] - expected) < 1e-12
+
+
 # ----------------------------------------------------------------------------------------------------
 # n-best: the kernel equals the numpy code (itself checked against brute force in tests/test_crf.py)
 
