@@ -387,7 +387,6 @@ def sum_emissions(table, rows, lengths, offsets, constants, rel_base, rel_bucket
 
 
 _LOAD_LOCK = threading.Lock()
-_LOAD_LOCK = threading.Lock()
 
 
 class Kernels(NamedTuple):
