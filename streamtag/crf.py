@@ -80,11 +80,20 @@ class ScaledForwardBackward:
     """
 
     __slots__ = ("n_labels", "alpha", "beta", "row_base", "row_stride", "alpha_shift", "beta_shift", "log_z",
-                 "lengths", "exact_tokens", "exact_alpha", "exact_beta", "_log_alpha", "_log_beta")
+                 "lengths", "exact_tokens", "exact_alpha", "exact_beta", "follow",
+                 "_log_alpha", "_log_beta")
 
     def __init__(self, n_labels, alpha, beta, row_base, row_stride, alpha_shift, beta_shift, log_z, lengths,
-                 exact_tokens=None, exact_alpha=None, exact_beta=None):
+                 exact_tokens=None, exact_alpha=None, exact_beta=None, follow=None):
         self.n_labels = n_labels
+        # follow: (follow_slot (N,), follow_rows (M, L), follow_shift (M,), decoded (N,), alpha_of_label
+        # (N,)) from the kernel: the scaled E * beta rows of the tokens that can follow a decoded span
+        # and each token's scaled alpha at its decoded label, contiguous where span_log_prob reads
+        # them (see crf_kernels.decode_flat). None: no such rows (every entry from the packed blocks).
+        if follow is None:
+            none = np.full(row_base.size, -1, dtype=np.int64)
+            follow = (none, np.zeros((0, n_labels)), np.zeros(0), none, np.zeros(row_base.size))
+        self.follow = follow
         self.alpha, self.beta, self.row_base, self.row_stride = alpha, beta, row_base, row_stride
         self.alpha_shift, self.beta_shift, self.log_z, self.lengths = alpha_shift, beta_shift, log_z, lengths
         self.exact_tokens = np.zeros(0, dtype=np.int64) if exact_tokens is None else exact_tokens
@@ -586,10 +595,14 @@ def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, 
     (taken only for the entries a caller asks for).
     """
     decode_flat, _, exact_forward_backward = kernels[:3]
-    labels, scores, *scaled, log_z, suspect, confidence = decode_flat(E, lengths, trans, start, end)
+    labels, scores, *scaled, log_z, suspect, confidence, follow_slot, follow_rows, follow_shift, alpha_of_label = \
+        decode_flat(E, lengths, trans, start, end)
+    # A copy of the labels: the caller may change Decoded.labels, the kernel must see those alpha_of_label holds.
+    follow = (follow_slot, follow_rows, follow_shift, labels.copy(), alpha_of_label)
     redo = np.flatnonzero(suspect)
     if not redo.size:
-        return Decoded(labels, scores, ScaledForwardBackward(E.shape[1], *scaled, log_z, lengths), confidence)
+        return Decoded(labels, scores, ScaledForwardBackward(E.shape[1], *scaled, log_z, lengths, follow=follow),
+                       confidence)
     # Rare (extreme weights or impossible sequences): redo those sequences in log space, compactly.
     offsets = np.zeros(lengths.size, dtype=np.int64)
     np.cumsum(lengths[:-1], out=offsets[1:])
@@ -607,7 +620,7 @@ def _decode_compiled(kernels, E: np.ndarray, lengths: np.ndarray, trans, start, 
     rows = np.arange(tokens.size)
     exact_confidence = np.exp(exact_alpha[rows, labels[tokens]] + exact_beta[rows, labels[tokens]] - token_log_z)
     confidence[tokens] = np.minimum(exact_confidence, 1.0)  # rounding can overshoot 1 by an ulp or two
-    fb = ScaledForwardBackward(E.shape[1], *scaled, log_z, lengths, tokens, exact_alpha, exact_beta)
+    fb = ScaledForwardBackward(E.shape[1], *scaled, log_z, lengths, tokens, exact_alpha, exact_beta, follow)
     return Decoded(labels, scores, fb, confidence)
 
 
@@ -782,6 +795,11 @@ def span_log_prob(fb: ForwardBackward | ScaledForwardBackward, E, lengths, trans
     if (first < 0).any() or (stop <= first).any() or (stop > lengths[seq]).any():
         raise ValueError("spans must satisfy 0 <= first < stop <= sequence length")
     offsets = np.concatenate(([0], np.cumsum(lengths)[:-1])) if lengths.size else lengths
+    if isinstance(fb, ScaledForwardBackward) and E.shape[1]:
+        kernels = compiled("load")  # decode's kernels made fb, so they are loaded
+        if kernels is not None:
+            return _span_log_prob_compiled(kernels[4], fb, E, offsets, lengths, trans, end, seq, first, stop,
+                                           b_label, i_label)
     first_token = offsets[seq] + first
     log_prob = fb.log_alpha_at(first_token, b_label)
 
@@ -810,6 +828,22 @@ def span_log_prob(fb: ForwardBackward | ScaledForwardBackward, E, lengths, trans
         log_prob[inner] += _logsumexp(following)
     log_z = fb.log_z[seq]
     return np.where(np.isfinite(log_z), log_prob - np.where(np.isfinite(log_z), log_z, 0.0), -np.inf)
+
+
+def _span_log_prob_compiled(kernel, fb: ScaledForwardBackward, E, offsets, lengths, trans, end, seq, first, stop,
+                            b_label, i_label) -> np.ndarray:
+    """`span_log_prob` by the compiled kernel, reading fb's scaled buffers directly (checked inputs)."""
+    if E.shape != (fb.row_base.size, fb.n_labels) or trans.shape != (fb.n_labels, fb.n_labels) \
+            or end.shape != (fb.n_labels,) or lengths.shape != fb.log_z.shape:
+        raise ValueError("span_log_prob: E, lengths, trans and end must be those fb was computed from")
+    if ((b_label < 0) | (b_label >= fb.n_labels) | (i_label < 0) | (i_label >= fb.n_labels)).any():
+        raise ValueError("span label index out of range")
+    arrays = [_writable(np.ascontiguousarray(a, dtype=np.int64))
+              for a in (offsets, lengths, seq, first, stop, b_label, i_label)]
+    return kernel(fb.alpha, fb.beta, fb.row_base, fb.row_stride, fb.alpha_shift, fb.beta_shift,
+                  _writable(np.ascontiguousarray(fb.exact_tokens, dtype=np.int64)), _writable(fb.exact_alpha),
+                  _writable(fb.exact_beta), *fb.follow, fb.log_z,
+                  _writable(E), *arrays[:2], _writable(trans), _writable(end), *arrays[2:])
 
 
 # ----------------------------------------------------------------------------------------------------

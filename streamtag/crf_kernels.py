@@ -436,8 +436,14 @@ def _scaled_forward(Ep, emission_exp, peak, batch_sizes, step_start, seq_of_col,
 @_jit
 def _scaled_backward(Ep, emission_exp, peak, batch_sizes, step_start, last_packed, seq_of_col, trans,
                      trans_exp, trans_shift, end, end_exp, end_shift, beta, beta_shift, suspect, sums, weighted,
-                     totals, lows):
-    """beta (L, N) packed, scaled per column, with log scale beta_shift (N,). Flags suspect sequences."""
+                     totals, lows, col_slot, follow_rows, follow_shift):
+    """beta (L, N) packed, scaled per column, with log scale beta_shift (N,). Flags suspect sequences.
+
+    Columns with col_slot[col] >= 0 (past the first step) also get their weighted row E * beta
+    (scaled) written to follow_rows[slot] (L,) and its log scale (beta_shift + emission peak) to
+    follow_shift[slot], while the step is in cache: one contiguous row per token instead of L
+    cache lines of the packed block when span_log_prob reads it.
+    """
     n_labels = Ep.shape[0]
     end_is_safe = True
     for j in range(n_labels):
@@ -461,6 +467,12 @@ def _scaled_backward(Ep, emission_exp, peak, batch_sizes, step_start, last_packe
                 scaled = beta[j, cur + tile:cur + stop]
                 for r in range(width):
                     after[r] = emission[r] * scaled[r]
+            for r in range(width):  # a token after a decoded entity: keep its row for span_log_prob
+                slot = col_slot[cur + tile + r]
+                if slot >= 0:
+                    for j in range(n_labels):
+                        follow_rows[slot, j] = weighted[j, r]
+                    follow_shift[slot] = beta_shift[cur + tile + r] + peak[cur + tile + r]
             totals[:width] = 0.0
             lows[:width] = np.inf
             for i in range(n_labels):
@@ -497,8 +509,23 @@ def _scaled_backward(Ep, emission_exp, peak, batch_sizes, step_start, last_packe
 
 
 @_jit
+def _follow_slots(rows, seq_of_col, offsets, labels, col_slot, follow_slot, n_follow):
+    """col_slot (n,): a new slot for each column whose token follows a token of its sequence decoded
+    other than O (label 0), else -1; recorded in follow_slot (N,) by token. Returns the slot count."""
+    for col in range(rows.size):
+        row = rows[col]
+        if row > offsets[seq_of_col[col]] and labels[row - 1] != 0:
+            col_slot[col] = n_follow
+            follow_slot[row] = n_follow
+            n_follow += 1
+        else:
+            col_slot[col] = -1
+    return n_follow
+
+
+@_jit
 def _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_col, labels, log_z, block, sums,
-                            confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat):
+                            confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat, alpha_of_label):
     """Per token of a chunk (packed (L, n) alpha and beta, kept where they are): the marginal of its
     decoded label, where its entries lie in the batch's buffers, and its shifts in flat order.
 
@@ -507,7 +534,8 @@ def _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_c
     disagree by hundreds of orders of magnitude, where the ratio could lose digits), the token takes
     the log-space formula exp(log alpha + log beta - log Z) instead, as crf's numpy code does.
     Entry (row, j) of the chunk is at buffer index row_base[row] + j * row_stride[row] (block: the
-    chunk's first index in the buffers). sums (n,) is scratch.
+    chunk's first index in the buffers). sums (n,) is scratch. alpha_of_label (N,) gets each token's
+    scaled alpha at its decoded label (where span_log_prob starts a decoded span), in flat order.
     """
     n_labels, n_cols = alpha.shape
     sums[:] = 0.0
@@ -526,6 +554,7 @@ def _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_c
             marginal = np.exp(np.log(alpha[label, col]) + np.log(beta[label, col]) + alpha_shift[col]
                               + beta_shift[col] - log_z[seq_of_col[col]])
         confidence[row] = marginal if marginal < 1.0 else 1.0
+        alpha_of_label[row] = alpha[label, col]
         row_base[row] = block + col
         row_stride[row] = n_cols
         alpha_shift_flat[row] = alpha_shift[col]
@@ -544,6 +573,11 @@ def decode_flat(E, lengths, trans, start, end):
     and beta_shift, log Z (B,), suspect (B,) bool: sequences whose scaled values are not trustworthy
     (redo them with `exact_forward_backward`), and confidence (N,): the marginal of each token's
     decoded label (not meaningful in suspect sequences). Empty sequences get score 0 and log Z 0.
+    Then follow_slot (N,), follow_rows (M, L), follow_shift (M,): each token whose previous token's
+    decoded label is not O (label 0), i.e. each token that can follow a decoded span, has its scaled
+    E * beta row at follow_rows[follow_slot[t]] (-1: none), with log(E[t, j]) + log_beta[t, j] =
+    log(follow_rows[slot, j]) + follow_shift[slot] (`span_log_prob_scaled` reads them); alpha_of_label
+    (N,): each token's scaled alpha at its decoded label (a span's first token, in flat order).
     """
     n_tokens, n_labels = E.shape
     labels = np.zeros(n_tokens, dtype=np.int64)
@@ -557,6 +591,11 @@ def decode_flat(E, lengths, trans, start, end):
     row_base = np.zeros(n_tokens, dtype=np.int64)
     row_stride = np.ones(n_tokens, dtype=np.int64)
     confidence = np.zeros(n_tokens)
+    follow_slot = np.full(n_tokens, -1, dtype=np.int64)
+    follow_rows = np.empty((n_tokens, n_labels))
+    follow_shift = np.empty(n_tokens)
+    alpha_of_label = np.empty(n_tokens)
+    n_follow = 0
     trans_exp, trans_shift = _exp_shifted(trans)
     start_exp, start_shift = _exp_shifted(start)
     end_exp, end_shift = _exp_shifted(end)
@@ -598,13 +637,125 @@ def decode_flat(E, lengths, trans, start, end):
                 suspect[seq] = True
                 total = 1.0
             log_z[seq] = alpha_shift[col] + end_shift + np.log(total)
+        col_slot = np.empty(n_cols, dtype=np.int64)
+        n_follow = _follow_slots(rows, seq_of_col, offsets, labels, col_slot, follow_slot, n_follow)
         _scaled_backward(Ep, factors, peaks, batch_sizes, step_start, last_cols, seq_of_col, trans, trans_exp,
-                         trans_shift, end, end_exp, end_shift, beta, beta_shift, suspect, sums, weighted, totals, lows)
+                         trans_shift, end, end_exp, end_shift, beta, beta_shift, suspect, sums, weighted, totals, lows,
+                         col_slot, follow_rows, follow_shift)
         _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_col, labels, log_z, block,
-                                np.empty(n_cols), confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat)
+                                np.empty(n_cols), confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat,
+                                alpha_of_label)
         block += n_labels * n_cols
     return (labels, scores, alpha_buffer, beta_buffer, row_base, row_stride, alpha_shift_flat, beta_shift_flat,
-            log_z, suspect, confidence)
+            log_z, suspect, confidence, follow_slot, follow_rows[:n_follow], follow_shift[:n_follow], alpha_of_label)
+
+
+# ----------------------------------------------------------------------------------------------------
+# Span probability from the scaled forward-backward
+
+
+# A span's sum over the labels after it, taken from the scaled E * beta row, is trusted from this
+# size up: terms that underflowed to 0 (each below ~1e-290) are then under 1e-90 of the sum.
+_FOLLOW_SAFE = 1e-200
+
+
+@_jit
+def _log_entry(scaled, shift, row_base, row_stride, exact_tokens, exact, token, label):
+    """log alpha (or beta) of (token, label) from decode_flat's buffers, or the exact row if the
+    token's sequence was redone in log space (exact_tokens ascending)."""
+    if exact_tokens.size:
+        where = np.searchsorted(exact_tokens, token)
+        if where < exact_tokens.size and exact_tokens[where] == token:
+            return exact[where, label]
+    value = scaled[row_base[token] + label * row_stride[token]]
+    return np.log(value) + shift[token] if value > 0.0 else _NEG_INF
+
+
+@_jit
+def _is_exact_row(exact_tokens, token):
+    if not exact_tokens.size:
+        return False
+    where = np.searchsorted(exact_tokens, token)
+    return where < exact_tokens.size and exact_tokens[where] == token
+
+
+@_jit
+def _log_following(E, trans, trans_exp, trans_shift, beta, beta_shift, row_base, row_stride, exact_tokens,
+                   exact_beta, follow_slot, follow_rows, follow_shift, token, last, skip, terms):
+    """log sum_{j != skip} exp(trans[last, j] + E[token, j] + log beta[token, j]): the label after a
+    span (anything but I-X). terms (L,) is scratch.
+
+    From the token's scaled E * beta row if decode kept one: sum_j trans_exp[last, j] * row[j], no
+    exp per label. If there is none, the token's row is exact, or that sum is below _FOLLOW_SAFE,
+    every term is taken in log space, as crf's numpy code does.
+    """
+    n_labels = E.shape[1]
+    slot = follow_slot[token]
+    if slot >= 0 and not _is_exact_row(exact_tokens, token):
+        total = 0.0
+        for j in range(n_labels):
+            if j != skip:
+                total += trans_exp[last, j] * follow_rows[slot, j]
+        if _FOLLOW_SAFE <= total < np.inf:
+            return np.log(total) + trans_shift + follow_shift[slot]
+    for j in range(n_labels):
+        terms[j] = trans[last, j] + E[token, j] + _log_entry(beta, beta_shift, row_base, row_stride, exact_tokens,
+                                                             exact_beta, token, j)
+    terms[skip] = _NEG_INF
+    peak = _NEG_INF
+    for j in range(n_labels):
+        if terms[j] > peak:
+            peak = terms[j]
+    if not np.isfinite(peak):  # as crf._peak: shift by 0 (all -inf gives -inf)
+        peak = 0.0
+    total = 0.0
+    for j in range(n_labels):
+        total += np.exp(terms[j] - peak)
+    return np.log(total) + peak if total > 0.0 else _NEG_INF
+
+
+@_jit_cached
+def span_log_prob_scaled(alpha, beta, row_base, row_stride, alpha_shift, beta_shift, exact_tokens, exact_alpha,
+                         exact_beta, follow_slot, follow_rows, follow_shift, decoded, alpha_of_label, log_z, E, offsets,
+                         lengths, trans, end, seq, first, stop, b_label, i_label):
+    """`crf.span_log_prob` on decode_flat's scaled forward-backward (see crf.ScaledForwardBackward for
+    the buffers, the exact rows and the follow rows; decoded (N,) the labels decode_flat gave, of which
+    alpha_of_label (N,) holds the scaled alphas), for spans given by seq, first, stop, b_label,
+    i_label (S,) (checked by the caller). A span's first alpha comes from alpha_of_label when the span
+    starts on its decoded label (the tagger's spans do: a flat, in-order read), else from the packed block. Returns (S,) log probabilities, -inf for impossible spans;
+    the numpy code's sums in its order, but the sum over the label after a span in scaled form.
+    """
+    n_spans = seq.size
+    out = np.empty(n_spans)
+    terms = np.empty(E.shape[1])
+    trans_exp, trans_shift = _exp_shifted(trans)
+    for s in range(n_spans):
+        b, first_label, inside_label = seq[s], b_label[s], i_label[s]
+        token = offsets[b] + first[s]
+        if decoded[token] == first_label and not _is_exact_row(exact_tokens, token):
+            value = alpha_of_label[token]
+            log_prob = np.log(value) + alpha_shift[token] if value > 0.0 else _NEG_INF
+        else:
+            log_prob = _log_entry(alpha, alpha_shift, row_base, row_stride, exact_tokens, exact_alpha, token,
+                                  first_label)
+        n_inside = stop[s] - first[s] - 1
+        last = first_label
+        if n_inside > 0:
+            inside = 0.0
+            for t in range(token + 1, token + 1 + n_inside):
+                inside += E[t, inside_label]
+            log_prob += trans[first_label, inside_label] + inside
+            last = inside_label
+        if n_inside > 1:
+            log_prob += (n_inside - 1) * trans[inside_label, inside_label]
+        if stop[s] == lengths[b]:
+            log_prob += end[last]
+        else:
+            log_prob += _log_following(E, trans, trans_exp, trans_shift, beta, beta_shift, row_base, row_stride,
+                                       exact_tokens, exact_beta, follow_slot, follow_rows, follow_shift,
+                                       offsets[b] + stop[s], last, inside_label, terms)
+        out[s] = log_prob - log_z[b] if np.isfinite(log_z[b]) else _NEG_INF
+    return out
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -760,12 +911,17 @@ def nbest_flat(E, lengths, trans, start, end, k):
 _LOAD_LOCK = threading.Lock()
 
 
-def _warm_up(decode, viterbi, exact, nbest) -> None:
+def _warm_up(decode, viterbi, exact, nbest, span) -> None:
     """Compile (or load from the cache) the one signature crf uses, on a tiny batch."""
     E = np.zeros((3, 2))
     lengths = np.array([2, 0, 1], dtype=np.int64)
     square, vector = np.zeros((2, 2)), np.zeros(2)
-    decode(E, lengths, square, vector, vector)
+    decoded, _, alpha, beta, row_base, row_stride, alpha_shift, beta_shift, log_z, _, _, follow_slot, follow_rows, \
+        follow_shift, alpha_of_label = decode(E, lengths, square, vector, vector)
+    one, none = np.zeros(1, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    span(alpha, beta, row_base, row_stride, alpha_shift, beta_shift, none, np.zeros((0, 2)), np.zeros((0, 2)),
+         follow_slot, follow_rows, follow_shift, decoded, alpha_of_label, log_z, E, np.array([0, 2, 2], dtype=np.int64), lengths, square,
+         vector, one, one, one + 1, one, one + 1)
     viterbi(E, lengths, square, vector, vector)
     exact(E, np.array([0, 2, 2], dtype=np.int64), lengths, np.array([0, 1, 2], dtype=np.int64),
           square, vector, vector, np.empty((3, 2)), np.empty((3, 2)), np.zeros(3))
@@ -773,24 +929,25 @@ def _warm_up(decode, viterbi, exact, nbest) -> None:
 
 
 def load():
-    """(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat), compiled; call once
-    before using them.
+    """(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat, span_log_prob_scaled), compiled;
+    call once before using them.
 
     A cache that cannot be read or written (corrupt files, a folder that became read-only, a full
     disk) must not stop tagging: the kernels are then compiled again without the cache, silently.
     """
-    global decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
+    global decode_flat, viterbi_flat, exact_forward_backward, nbest_flat, span_log_prob_scaled
     with _LOAD_LOCK, warnings.catch_warnings():
         warnings.simplefilter("ignore", numba.NumbaWarning)
         try:
-            _warm_up(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
+            _warm_up(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat, span_log_prob_scaled)
         except Exception:  # noqa: BLE001 - any cache fault; a real compile error recurs below and is raised
             decode_flat = _jit(decode_flat.py_func)
             viterbi_flat = _jit(viterbi_flat.py_func)
             exact_forward_backward = _jit(exact_forward_backward.py_func)
             nbest_flat = _jit(nbest_flat.py_func)
-            _warm_up(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat)
-        return decode_flat, viterbi_flat, exact_forward_backward, nbest_flat
+            span_log_prob_scaled = _jit(span_log_prob_scaled.py_func)
+            _warm_up(decode_flat, viterbi_flat, exact_forward_backward, nbest_flat, span_log_prob_scaled)
+        return decode_flat, viterbi_flat, exact_forward_backward, nbest_flat, span_log_prob_scaled
 
 
 @_jit_cached

@@ -118,6 +118,68 @@ def assert_rows_on_demand_equal(fb, ref_fb):
         assert_log_values_equal(fb.log_alpha_at(tokens, labels), ref_fb.log_alpha[tokens, j], "log_alpha entries")
 
 
+def every_span(lengths, n_labels):
+    """(seq, first, stop, b_label, i_label) of every token range of up to 6 tokens of every sequence, for
+    the label pairs (B-a, I-a) and (B-b, I-b) where they exist (the event is defined for any pair)."""
+    pairs = [(1, 2), (3, 4)] if n_labels >= 5 else [(1, n_labels - 1)]
+    spans = [(b, lo, hi, b_x, i_x) for b, n in enumerate(lengths) for lo in range(n)
+             for hi in range(lo + 1, min(n, lo + 6) + 1) for b_x, i_x in pairs]
+    return [np.array(column, dtype=np.int64) for column in zip(*spans)] if spans else None
+
+
+def assert_spans_same_as_numpy(got_fb, ref_fb, E, lengths, trans, end):
+    """span_log_prob from decode's scaled forward-backward (the compiled kernel) equals the numpy code
+    on the same fb to 1e-12 (relative to log Z), and the numpy code on the numpy reference's fb to the decode tolerance."""
+    spans = every_span(lengths, E.shape[1])
+    if spans is None:
+        return
+    got = crf.span_log_prob(got_fb, E, lengths, trans, end, *spans)
+    crf.USE_KERNELS = False
+    try:
+        same_fb = crf.span_log_prob(got_fb, E, lengths, trans, end, *spans)
+        reference = crf.span_log_prob(ref_fb, E, lengths, trans, end, *spans)
+    finally:
+        crf.USE_KERNELS = True
+    assert not np.isnan(got).any()
+    np.testing.assert_array_equal(np.isfinite(got), np.isfinite(same_fb))
+    np.testing.assert_array_equal(got[~np.isfinite(got)], same_fb[~np.isfinite(same_fb)])
+    # Both sum terms of the size of log Z (log alpha, log beta): rounding is relative to that size.
+    tolerance = 1e-12 * (1.0 + np.abs(got_fb.log_z[spans[0]]))
+    finite = np.isfinite(got)
+    assert (np.abs(got[finite] - same_fb[finite]) <= tolerance[finite]).all()
+    assert_log_values_equal(got, reference, "span_log_prob")
+
+
+def assert_follow_rows_equal(fb, labels, ref_fb, E, lengths):
+    """decode's follow rows (what span_log_prob reads for the label after a span): exactly the tokens
+    whose previous token in the sequence is decoded other than O (label 0), and log(row) + shift equals
+    E + log_beta of the numpy reference there (the definition of the row); and each token's alpha at
+    its decoded label equals the reference's log_alpha there."""
+    follow_slot, follow_rows, follow_shift, decoded, alpha_of_label = fb.follow
+    np.testing.assert_array_equal(decoded, labels)
+    tokens = np.arange(E.shape[0])
+    exact_token = np.isin(tokens, fb.exact_tokens)
+    with np.errstate(divide="ignore"):
+        got_alpha = np.log(alpha_of_label) + fb.alpha_shift
+    assert_log_values_equal(got_alpha[~exact_token], ref_fb.log_alpha[tokens, labels][~exact_token], "alpha of label")
+    offsets = np.concatenate(([0], np.cumsum(lengths)[:-1])).astype(np.int64)
+    starts = np.zeros(E.shape[0], dtype=bool)
+    starts[offsets[np.asarray(lengths) > 0]] = True
+    follows = np.zeros(E.shape[0], dtype=bool)
+    follows[1:] = labels[:-1] != 0
+    follows &= ~starts
+    np.testing.assert_array_equal(follow_slot >= 0, follows)
+    if not follows.any():
+        return
+    slots = follow_slot[follows]
+    assert np.unique(slots).size == slots.size
+    exact = np.isin(np.flatnonzero(follows), fb.exact_tokens)
+    with np.errstate(divide="ignore"):
+        got = np.log(follow_rows[slots]) + follow_shift[slots][:, None]
+    want = E[follows] + ref_fb.log_beta[follows]
+    assert_log_values_equal(got[~exact], want[~exact], "follow rows")
+
+
 def assert_same_as_numpy(E, lengths, trans, start, end):
     got = crf.decode(E, lengths, trans, start, end)
     ref = numpy_decode(E, lengths, trans, start, end)
@@ -125,6 +187,8 @@ def assert_same_as_numpy(E, lengths, trans, start, end):
     np.testing.assert_array_equal(got.scores, ref.scores)
     lazy = isinstance(got.fb, crf.ScaledForwardBackward)
     if lazy:  # before anything is materialised: entries computed on demand
+        assert_spans_same_as_numpy(got.fb, ref.fb, E, lengths, trans, end)
+        assert_follow_rows_equal(got.fb, got.labels, ref.fb, E, lengths)
         assert_rows_on_demand_equal(got.fb, ref.fb)
     for name in ("log_alpha", "log_beta", "log_z"):
         assert_log_values_equal(getattr(got.fb, name), getattr(ref.fb, name), name)
@@ -586,7 +650,7 @@ def test_load_recovers_from_a_failing_cache(monkeypatch):
 
     original = crf_kernels._warm_up
     saved = (crf_kernels.decode_flat, crf_kernels.viterbi_flat,
-             crf_kernels.exact_forward_backward, crf_kernels.nbest_flat)
+             crf_kernels.exact_forward_backward, crf_kernels.nbest_flat, crf_kernels.span_log_prob_scaled)
     monkeypatch.setattr(crf_kernels, "_warm_up", broken_then_working)
     try:
         kernels = crf_kernels.load()
@@ -599,7 +663,7 @@ def test_load_recovers_from_a_failing_cache(monkeypatch):
         np.testing.assert_array_equal(scores, [3.0, 2.0])
     finally:
         (crf_kernels.decode_flat, crf_kernels.viterbi_flat,
-         crf_kernels.exact_forward_backward, crf_kernels.nbest_flat) = saved
+         crf_kernels.exact_forward_backward, crf_kernels.nbest_flat, crf_kernels.span_log_prob_scaled) = saved
 
 
 _DECODE_SCRIPT = (
@@ -646,7 +710,7 @@ def test_corrupt_cache_files_are_ignored(tmp_path):
     def corrupt(folder):
         folder.mkdir()
         source = Path(crf_kernels.__file__).read_text()
-        for name in ("decode_flat", "viterbi_flat", "exact_forward_backward", "nbest_flat"):
+        for name in ("decode_flat", "viterbi_flat", "exact_forward_backward", "nbest_flat", "span_log_prob_scaled"):
             line = source.splitlines().index(f"def {name}(" + source.split(f"def {name}(")[1].splitlines()[0]) + 1
             index = folder / f"crf_kernels.{name}-{line}.py{sys.version_info.major}{sys.version_info.minor}.nbi"
             index.write_bytes(b"\x80\x04garbage" * 10)
