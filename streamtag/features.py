@@ -1573,6 +1573,12 @@ class EmissionScorer:
         self.slot_offsets = self.rows.offsets.astype(np.int64)               # (K,), offsets[0] = 0
         self._kind_ids: dict[str, int] = {}
         self._kind_names: list[str] = []
+        self._epoch = 0   # counts the table's fresh starts: rows of an older epoch mean nothing now
+        # Tokenizer key -> table row (-1: unknown), filled under one tokenizer generation and one epoch;
+        # the last entry stays -1 and is never a key's, so a key of -1 reads it (see `_rows_by_key`).
+        self._row_of_key = np.full(1, -1, dtype=np.int64)      # (keys + 1,)
+        self._key_generation: int | None = None
+        self._key_epoch = 0
         # The whole table at once: untouched rows cost no memory (the system maps zero pages as they
         # are first written), and it never has to be copied to grow (unless one batch outgrows it).
         self._reset(capacity=self.cache_size + 1)
@@ -1589,6 +1595,7 @@ class EmissionScorer:
         batch of this many tokens and key bytes at least."""
         if compiled is None:
             compiled = getattr(self, "_index", None) is not None
+        self._epoch += 1
         # Without kernels, two dict indexes to the rows: by text, for the first kind a text came with
         # (almost every text only ever has one), so that one C-level map per batch finds nearly every
         # token; and by (text, kind id) for a text's other kinds, looked up only for tokens whose text
@@ -1610,11 +1617,60 @@ class EmissionScorer:
         if compiled:
             self._grow(self._index.limit)
 
-    def type_rows(self, texts: list[str], kinds: list[str]) -> np.ndarray:
-        """(N,) int64 table row of each token's type, scoring the types not seen before."""
+    def type_rows(self, texts: list[str], kinds: list[str], keys: np.ndarray | None = None,
+                  generation: int | None = None) -> np.ndarray:
+        """(N,) int64 table row of each token's type, scoring the types not seen before.
+
+        ``keys`` (N,) int64 and ``generation``: the tokenizer's `TokenBatch.keys` and `.generation`; a
+        token whose key (>= 0) was seen under this generation since the table last started afresh
+        takes the row found for it then, without its text being looked up again."""
         n = len(texts)
         if len(kinds) != n:
             raise DataError(f"{n} tokens but {len(kinds)} kinds")
+        if keys is not None and generation is not None and n:
+            keys = np.asarray(keys, dtype=np.int64)
+            if keys.shape != (n,) or int(keys.min()) < -1:
+                raise DataError(f"keys must be (N,) = ({n},) row ids or -1, got shape {keys.shape}")
+            return self._rows_by_key(texts, kinds, keys, generation)
+        return self._rows_by_type(texts, kinds)
+
+    def _rows_by_key(self, texts: list[str], kinds: list[str], keys: np.ndarray, generation: int) -> np.ndarray:
+        """`type_rows` of tokens with keys (N,): one gather for the tokens of known keys, the lookup of
+        `_rows_by_type` for the others, whose keys are then recorded."""
+        if generation != self._key_generation or self._epoch != self._key_epoch:
+            self._row_of_key.fill(-1)      # the keys' rows, or the table's, were numbered afresh
+            self._key_generation, self._key_epoch = generation, self._epoch
+        if int(keys.max()) >= self._row_of_key.size - 1:    # grow, keeping the last entry free (-1)
+            grown = np.full(max(int(keys.max()) + 2, 2 * self._row_of_key.size), -1, dtype=np.int64)
+            grown[: self._row_of_key.size - 1] = self._row_of_key[:-1]
+            self._row_of_key = grown
+        rows = self._row_of_key.take(keys)                 # key -1 reads the last entry: -1
+        unknown = np.flatnonzero(rows < 0)
+        if not unknown.size:
+            return rows
+        if unknown.size < rows.size:
+            epoch = self._epoch
+            picked = unknown.tolist()
+            rows[unknown] = self._rows_by_type(_pick(texts, picked), _pick(kinds, picked))
+            if self._epoch != epoch:
+                # The table started afresh while placing the others: the rows taken by key are
+                # the old table's. Every token's row from the lookup.
+                unknown = np.arange(rows.size)
+                rows = self._rows_by_type(texts, kinds)
+        else:
+            rows = self._rows_by_type(texts, kinds)
+        if self._epoch != self._key_epoch:      # started afresh in this batch: the old keys' rows are gone
+            self._row_of_key.fill(-1)
+            self._key_epoch = self._epoch
+            unknown = np.arange(rows.size)
+        new_keys = keys[unknown]
+        recorded = new_keys >= 0
+        self._row_of_key[new_keys[recorded]] = rows[unknown[recorded]]
+        return rows
+
+    def _rows_by_type(self, texts: Sequence[str], kinds: Sequence[str]) -> np.ndarray:
+        """`type_rows` by the tokens' texts and kinds (N)."""
+        n = len(texts)
         kernels = _feature_kernels()
         if (kernels is not None) != (self._index is not None):
             self._reset(capacity=self.table.shape[0], compiled=kernels is not None)   # switched: start afresh

@@ -103,7 +103,7 @@ class Tagger:
         if not lines:
             return []
         tokens = self.tokenizer.tokenize_lines(lines)
-        type_rows = self.scorer.type_rows(tokens.texts, tokens.kinds)
+        type_rows = self.scorer.type_rows(tokens.texts, tokens.kinds, tokens.keys, tokens.generation)
         batch = self._cut(tokens.counts)
         if batch.token_index is not None:
             type_rows = type_rows[batch.token_index]

@@ -28,7 +28,7 @@ from __future__ import annotations
 
 import re
 from functools import lru_cache
-from itertools import chain, compress, islice, repeat
+from itertools import chain, compress, count, islice, repeat
 from operator import attrgetter
 from typing import NamedTuple
 
@@ -377,6 +377,11 @@ class TokenBatch(NamedTuple):
     starts: np.ndarray  # (N,) int64 character offsets into the token's own line
     ends: np.ndarray  # (N,) int64
     counts: np.ndarray  # (B,) int64 tokens per line
+    # (N,) int64 per token the tokenizer's row of it (the row fixes text and kind) while that row stays
+    # cached, else -1; valid only under ``generation``, which changes whenever rows are renumbered and
+    # is never the same for two tokenizers of a process. None: no keys (built by hand, or an old path).
+    keys: np.ndarray | None = None
+    generation: int | None = None
 
     def per_line(self) -> list[TokenList]:
         """The batch cut back into one TokenList per line (for checks and inspection, not hot paths)."""
@@ -391,6 +396,7 @@ _ROWS_PER_PIECE = 8  # token rows kept per cached piece on average at most (serv
 _ENTRY = np.dtype("<i4")  # a cache entry is three of these as bytes: first token row, number of rows,
 _ENTRY_FIELDS = 3  # and the piece's length (so a batch's piece offsets need no pass over its text)
 _MISSING = np.array([0, -1, 0], dtype=_ENTRY).tobytes()  # entry of a piece not in the cache
+_GENERATIONS = count(1)  # row numberings of all tokenizers of the process: keys never collide
 _get_lastindex = attrgetter("lastindex")
 _group = re.Match.group
 _start = re.Match.start
@@ -429,7 +435,9 @@ class BatchTokenizer:
     def _clear(self) -> None:
         """Forget every piece. The row tables are kept (only their references to strings are
         dropped): they refill to the same size, and freeing and regrowing them would make the
-        daemon's resident memory rise and fall with every refill instead of staying flat."""
+        daemon's resident memory rise and fall with every refill instead of staying flat. The rows
+        are numbered afresh, so the keys get a new generation."""
+        self.generation = next(_GENERATIONS)
         self._entries: dict[str, bytes] = {}  # cached piece -> first row, rows (2 x int32)
         if getattr(self, "_table", None):
             self._table.clear()
@@ -456,7 +464,7 @@ class BatchTokenizer:
             raise DataError(f"tokenize expects a list of decoded str lines, got {_first_non_str(lines)}") from None
         if not lines:
             empty = np.zeros(0, dtype=np.int64)
-            return TokenBatch([], [], empty, empty.copy(), empty.copy())
+            return TokenBatch([], [], empty, empty.copy(), empty.copy(), empty.copy(), self.generation)
         if self._table is None:
             self._table = _PieceTable(self.cache_size) if _scanner() is not None else False
         if self._table:
@@ -478,7 +486,7 @@ class BatchTokenizer:
             kept_rows = self._add_missing(pieces, entries, missing)
         self.misses += n_missing
         self.hits += len(pieces) - n_missing
-        batch = self._gather(lines, entries)
+        batch = self._gather(lines, entries, kept_rows)
         if self._n_rows > kept_rows:  # let go of this batch's pieces that are not cached
             self._texts[kept_rows : self._n_rows] = None
             self._kinds[kept_rows : self._n_rows] = None
@@ -519,7 +527,8 @@ class BatchTokenizer:
             temp_first, temp_rows = self._add_rows(joined, code_points, temp_starts, temp_lengths, kernels)
         rows, starts, ends, counts = kernels.gather(first, n_rows, offsets, per_line, table.pieces, temp_first,
                                                     temp_rows, self._starts, self._ends)
-        batch = TokenBatch(self._texts.take(rows).tolist(), self._kinds.take(rows).tolist(), starts, ends, counts)
+        batch = TokenBatch(self._texts.take(rows).tolist(), self._kinds.take(rows).tolist(), starts, ends, counts,
+                           _keys(rows, kept_rows), self.generation)
         self.misses += misses
         self.hits += len(first) - misses
         if self._n_rows > kept_rows:  # let go of this batch's pieces that are not cached
@@ -619,8 +628,9 @@ class BatchTokenizer:
             self._starts = _grown(self._starts, size)
             self._ends = _grown(self._ends, size)
 
-    def _gather(self, lines: list[str], entries: np.ndarray) -> TokenBatch:
-        """The batch from the pieces' entries (P, 3): their token rows, offsets shifted to the line."""
+    def _gather(self, lines: list[str], entries: np.ndarray, kept_rows: int) -> TokenBatch:
+        """The batch from the pieces' entries (P, 3): their token rows, offsets shifted to the line;
+        rows below ``kept_rows`` stay cached (they are the keys)."""
         n_tokens = entries[:, 1]  # (P,)
         ends = np.cumsum(n_tokens, dtype=np.int64)
         rows = np.arange(ends[-1]) + np.repeat(entries[:, 0] - (ends - n_tokens), n_tokens)  # (N,)
@@ -636,7 +646,15 @@ class BatchTokenizer:
             self._starts.take(rows) + shift,
             self._ends.take(rows) + shift,
             np.add.reduceat(n_tokens.astype(np.int64), first_piece),
+            _keys(rows, kept_rows),
+            self.generation,
         )
+
+
+def _keys(rows: np.ndarray, kept_rows: int) -> np.ndarray:
+    """(N,) the rows (N,) that stay cached (below ``kept_rows``), -1 for the others: rows of pieces
+    not cached are given to other pieces in the next batch, so they must never serve as keys."""
+    return np.where(rows < kept_rows, rows, -1)
 
 
 def _first_non_str(lines) -> str:

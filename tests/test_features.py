@@ -769,3 +769,100 @@ def test_value_lookup_tags_agree_with_the_kernels():
     assert (features.LOOKUP_WORD, features.LOOKUP_CUT, features.LOOKUP_SHAPE, features.LOOKUP_COLLAPSED) == \
         (feature_kernels.LOOKUP_WORD, feature_kernels.LOOKUP_CUT, feature_kernels.LOOKUP_SHAPE,
          feature_kernels.LOOKUP_COLLAPSED)
+
+
+# ------------------------------------------------------------------------------------------------
+# type rows by the tokenizer's keys
+# ------------------------------------------------------------------------------------------------
+
+
+def _keyed_pair(cache_size):
+    """Two scorers of one model over FULL_SPEC with random weights: one to be given keys, one not."""
+    from streamtag.demo.generate import generate_stream
+    from streamtag.tokenize import BatchTokenizer
+
+    lines = [record["text"] for record in generate_stream(1500, seed=21)]
+    tokenizer = BatchTokenizer()
+    extractor = FeatureExtractor(FeatureSpec.from_dict(FULL_SPEC))
+    batch = tokenizer.tokenize_lines(lines[:300])
+    extractor.fit([(line.texts, line.kinds) for line in batch.per_line()])
+    weights = np.random.default_rng(11).normal(size=(extractor.n_features, 5))
+    return lines, extractor, weights, [EmissionScorer(extractor, weights, cache_size=cache_size) for _ in range(2)]
+
+
+def _assert_same_scores(keyed, keyed_rows, plain, plain_rows, lengths):
+    """Reference: the lookup by text and kind (type_rows without keys), itself checked against the
+    sparse product X @ W above. The rows may differ, their scores may not, by a single bit."""
+    assert np.array_equal(keyed.table[keyed_rows], plain.table[plain_rows])
+    assert np.array_equal(keyed.emissions(keyed_rows, lengths), plain.emissions(plain_rows, lengths))
+
+
+# Pieces over 256 characters, of different kinds and shapes: never cached by the tokenizer, so their
+# rows are reused by the next batch's and must never be keys.
+LONG_PIECES = ["x" * 300, "7" * 300, "Ab" * 150, "q7" * 150, "Z" * 300]
+
+
+@pytest.mark.parametrize("kernels", [True, False])
+@pytest.mark.parametrize("pieces_cached", [120, 100_000])
+def test_type_rows_by_key_equal_type_rows_by_text(monkeypatch, kernels, pieces_cached):
+    # Invented demo lines through a small type table, which starts afresh many times, and a small
+    # or a large tokenizer cache (many generations, or one): keys of an older generation or an
+    # older table must never be used.
+    from streamtag import crf
+    from streamtag.tokenize import BatchTokenizer
+
+    monkeypatch.setattr(crf, "USE_KERNELS", kernels)
+    lines, extractor, weights, (keyed, plain) = _keyed_pair(cache_size=180)
+    tokenizer = BatchTokenizer(cache_size=pieces_cached)
+    generations, epoch = set(), keyed._epoch
+    for start in range(0, len(lines), 75):
+        long_line = f"payload {LONG_PIECES[start // 75 % len(LONG_PIECES)]} end"
+        batch = tokenizer.tokenize_lines(lines[start : start + 75] + [long_line])
+        generations.add(batch.generation)
+        rows = keyed.type_rows(batch.texts, batch.kinds, batch.keys, batch.generation)
+        _assert_same_scores(keyed, rows, plain, plain.type_rows(batch.texts, batch.kinds), batch.counts)
+        if start == 0:  # and against the sparse product itself, once
+            expected, lengths = _reference_emissions(extractor, [(t.texts, t.kinds) for t in batch.per_line()],
+                                                     weights)
+            np.testing.assert_allclose(keyed.emissions(rows, lengths), expected, rtol=0, atol=1e-9)
+    assert keyed._epoch - epoch >= 4 and (len(generations) >= 4 if pieces_cached < 1000 else len(generations) == 1)
+    assert (keyed._row_of_key >= 0).sum() > 0  # keys were recorded (and used, batch after batch)
+
+
+def test_table_starting_afresh_while_placing_the_new_types():
+    # Batch 2 repeats batch 1's tokens (known by key) and brings more new types than the table has
+    # room for: the table starts afresh during the lookup of the new ones, which orphans the rows
+    # taken by key; they must be looked up again. Then other lines start it afresh once more (given
+    # with keys, or without), and the first lines' keys, still of the tokenizer's generation, point
+    # into a table gone by.
+    from streamtag.tokenize import BatchTokenizer
+
+    _, extractor, weights, (keyed, plain) = _keyed_pair(cache_size=10)
+    tokenizer = BatchTokenizer()
+    first = ["relay-07 down at 12:00:01 code 503", "kestrel login failed"]  # invented host and user
+    second = first + ["brindle-04 vault-02 up since 09:15:00 for 17 days"]
+    other = ["moth-11 sent 4096 bytes to 198.51.100.23 via tunnel-5 in 0.25 s"]  # RFC 5737 address
+    unkeyed = ["finch-19 wrote 77 rows to ledger-3 at 10:42:07 in 3.5 s"]  # invented names
+    fresh_starts = []
+    for lines in (first, second, second, first, other, first, second, unkeyed, first):
+        batch = tokenizer.tokenize_lines(lines)
+        epoch = keyed._epoch
+        with_keys = (batch.keys, batch.generation) if lines is not unkeyed else ()
+        rows = keyed.type_rows(batch.texts, batch.kinds, *with_keys)
+        _assert_same_scores(keyed, rows, plain, plain.type_rows(batch.texts, batch.kinds), batch.counts)
+        fresh_starts.append(keyed._epoch - epoch)
+    assert fresh_starts[1] > 0 and fresh_starts[7] > 0  # mid-lookup, and in a call without keys
+
+
+def test_type_rows_by_key_of_another_generation_are_not_used():
+    # The same keys under a new generation stand for other tokens (the tokenizer renumbered its rows).
+    _, extractor, weights, (keyed, plain) = _keyed_pair(cache_size=100)
+    keys = np.array([0, 1, -1])
+    for generation, texts in ((1, ["alpha", "beta", "x" * 300]), (2, ["beta", "alpha", "7"]), (2, ["beta", "alpha", "7"])):
+        kinds = ["word", "word", "ident" if texts[2] == "7" else "word"]
+        rows = keyed.type_rows(texts, kinds, keys, generation)
+        _assert_same_scores(keyed, rows, plain, plain.type_rows(texts, kinds), np.array([3]))
+    with pytest.raises(DataError):
+        keyed.type_rows(["a"], ["word"], np.array([0, 1]), 3)
+    with pytest.raises(DataError):
+        keyed.type_rows(["a"], ["word"], np.array([-2]), 3)

@@ -159,3 +159,34 @@ def test_split_lines_get_no_runner_up_and_others_keep_theirs(tagger):
     [alone] = tagger.tag(["relay-07 down"], review_below=1.01)
     assert short.runner_up == alone.runner_up and short.runner_up_probability == alone.runner_up_probability
     assert empty.runner_up == [] and empty.runner_up_probability == 0.0  # no tokens: no second path
+
+
+def test_tag_with_tokenizer_keys_equals_tag_without(tagger):
+    # Reference: the same model with its type rows looked up by text and kind only (no keys). Small
+    # caches on both sides start afresh many times, mid-batch too; emissions must agree bit for bit.
+    from streamtag.demo.generate import generate_stream
+    from streamtag.features import EmissionScorer
+    from streamtag.tokenize import BatchTokenizer
+
+    keyed, plain = Tagger(tagger.model), Tagger(tagger.model)
+    for each in (keyed, plain):
+        each.tokenizer = BatchTokenizer(cache_size=150)
+        each.scorer = EmissionScorer(each.extractor, each.emission, cache_size=200)
+    by_text = plain.scorer.type_rows
+    plain.scorer.type_rows = lambda texts, kinds, *keys: by_text(texts, kinds)  # keys dropped
+    emissions = {keyed: [], plain: []}
+    for each in (keyed, plain):
+        scorer_emissions = each.scorer.emissions
+        each.scorer.emissions = lambda rows, lengths, f=scorer_emissions, out=emissions[each]: \
+            out.append(f(rows, lengths)) or out[-1]
+    lines = [record["text"] for record in generate_stream(1500, seed=31)]
+    generations, epoch = set(), keyed.scorer._epoch
+    for start in range(0, len(lines), 100):
+        # Pieces over 256 characters are never cached: their rows are the next batch's, never keys.
+        chunk = lines[start : start + 100] + [f"token {'k9' * 140} sent", f"from {'QZ7'[start // 100 % 3] * 300}"]
+        assert keyed.tag(chunk, review_below=0.5) == plain.tag(chunk, review_below=0.5)
+        generations.add(keyed.tokenizer.generation)
+    assert len(emissions[keyed]) == len(emissions[plain]) >= 15
+    for got, expected in zip(emissions[keyed], emissions[plain]):
+        assert np.array_equal(got, expected)
+    assert len(generations) >= 4 and keyed.scorer._epoch - epoch >= 4  # both caches started afresh often

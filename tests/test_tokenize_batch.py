@@ -402,3 +402,86 @@ def test_property_many_repeated_pieces_through_a_small_table(pieces, cache_size)
     for _ in range(3):
         assert_same_as_tokenize(lines, tokenizer.tokenize_lines(lines))
         assert tokenizer.cached_pieces <= cache_size
+
+
+# ------------------------------------------------------------------------------------------------
+# keys: the rows of cached pieces' tokens, for the emission scorer to find type rows without text
+# ------------------------------------------------------------------------------------------------
+
+
+def _check_keys(batch: TokenBatch, seen: dict) -> None:
+    """Every key (>= 0) names one (text, kind) for as long as its generation lasts: ``seen`` maps
+    (generation, key) to the first (text, kind) met under it, across batches."""
+    assert batch.keys.dtype == np.int64 and batch.keys.shape == (len(batch.texts),)
+    assert (batch.keys >= -1).all()
+    for key, text, kind in zip(batch.keys.tolist(), batch.texts, batch.kinds):
+        if key >= 0:
+            assert seen.setdefault((batch.generation, key), (text, kind)) == (text, kind)
+
+
+@pytest.mark.parametrize("kernels", [True, False])
+@pytest.mark.parametrize("cache_size", [150, 100_000])
+def test_keys_stay_with_their_token_through_many_refills(monkeypatch, kernels, cache_size):
+    # Reference: tokenize per line, and the rule that a key means one token for its generation.
+    # Invented demo lines through a small cache that clears many times (mid-batch too, as batches
+    # bring more new pieces than fit), or a large one that never does; pieces with no room, or too
+    # long to cache, are tokenized for the batch only and their rows, reused in the next batch,
+    # must never be keys.
+    from streamtag import crf
+    from streamtag.demo.generate import generate_stream
+
+    monkeypatch.setattr(crf, "USE_KERNELS", kernels)
+    lines = [record["text"] for record in generate_stream(1200, seed=7)]
+    tokenizer = BatchTokenizer(cache_size=cache_size)
+    seen: dict = {}
+    generations = []
+    for start in range(0, len(lines), 100):
+        # The same lines again (nothing new: no clearing), with another long piece (RFC 4648
+        # section 4 alphabet, over 256 characters) whose rows take those of the one before.
+        blobs = [f"id={letter * 300}" for letter in "AB"]
+        for chunk in (lines[start : start + 100] + blobs[:1], lines[start : start + 100][::-1] + blobs[1:]):
+            batch = tokenizer.tokenize_lines(chunk)
+            assert_same_as_tokenize(chunk, batch)
+            _check_keys(batch, seen)
+            generations.append(batch.generation)
+    assert bool(tokenizer._table) == (kernels and tokenize_module._batch_kernels() is not None)
+    # the small cache cleared several times (rows renumbered), the large one never
+    assert len(set(generations)) >= 4 if cache_size < 1000 else len(set(generations)) == 1
+    assert len(seen) > 150  # keys were given (and checked)
+
+
+def test_keys_of_uncached_pieces_are_minus_one():
+    # Pieces over 256 characters (base64 alphabet, RFC 4648 section 4) are never cached; pieces
+    # beyond a full cache in a fresh tokenizer are tokenized for the batch only.
+    blob = "QUJD" * 80
+    tokenizer = BatchTokenizer()
+    batch = tokenizer.tokenize_lines([f"a=1 {blob} b", blob])
+    assert batch.texts == ["a", "=", "1", blob, "b", blob]  # common practice: key=value splits
+    assert batch.keys.tolist()[3] == batch.keys.tolist()[5] == -1
+    assert (batch.keys[[0, 1, 2, 4]] >= 0).all() and len(set(batch.keys[[0, 1, 2, 4]].tolist())) == 4
+    full = BatchTokenizer(cache_size=2)
+    batch = full.tokenize_lines(["p q r s", "p q r s"])
+    keyed = batch.keys >= 0
+    assert int(np.count_nonzero(keyed)) == 4 and full.cached_pieces == 2  # two pieces, twice each
+    again = full.tokenize_lines(["q p"])  # only cached pieces: nothing is renumbered
+    assert again.generation == batch.generation and again.keys.tolist() == batch.keys[[1, 0]].tolist()
+
+
+@pytest.mark.parametrize("kernels", [True, False])
+def test_generation_changes_when_the_cache_clears_mid_batch(monkeypatch, kernels):
+    # A batch with more new pieces than the cache has room for, after a batch that half filled it:
+    # the cache starts afresh during the batch, so the batch's keys are of a new generation.
+    from streamtag import crf
+
+    monkeypatch.setattr(crf, "USE_KERNELS", kernels)
+    tokenizer = BatchTokenizer(cache_size=4)
+    first = tokenizer.tokenize_lines(["alpha beta gamma"])
+    second = tokenizer.tokenize_lines(["alpha delta epsilon zeta"])
+    assert second.generation != first.generation and (second.keys >= 0).all()
+    seen: dict = {}
+    for batch in (first, second, tokenizer.tokenize_lines(["zeta epsilon delta alpha"])):
+        assert_same_as_tokenize([" ".join(batch.texts)], batch)
+        _check_keys(batch, seen)
+    third = tokenizer.tokenize_lines(["alpha delta"])
+    assert third.generation == second.generation and third.keys.tolist() == second.keys[:2].tolist()
+    assert BatchTokenizer().tokenize_lines(["alpha"]).generation not in {first.generation, second.generation}
