@@ -353,9 +353,15 @@ def _prefetch_row(typingctx, table, row):
 
 @_jit_cached
 def sum_emissions(table, rows, lengths, offsets, constants, rel_base, rel_buckets, first_last, out):
-    """E (N, L) of a batch from per-type score blocks: `crf_kernels.sum_emissions` (same arguments,
-    same order of additions, so the same result bit for bit), with each row asked for from memory
-    _PREFETCH_AHEAD tokens before it is read."""
+    """E (N, L) of a batch from per-type score blocks: `features.EmissionScorer.emissions`, compiled.
+
+    table (R, K, L): per type row and window slot, the summed weights the type lends there (row 0:
+    the boundary blocks); rows (N,) each token's type row; lengths (S,); offsets (K,) the slots'
+    offsets (offsets[0] = 0); constants (C, L): bias, first, last, then the relative buckets from
+    rel_base. Adds in the numpy code's order (own block + bias, first, last, bucket, then slots), so
+    the result is the same bit for bit. One pass per token, no (N, L) temporaries; each token's row
+    is asked for from memory _PREFETCH_AHEAD tokens before it is read (the table outgrows the caches).
+    """
     n_labels = table.shape[2]
     n_tokens = rows.shape[0]
     base = 0

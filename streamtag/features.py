@@ -1533,8 +1533,7 @@ def _pick(items: Sequence, picked: list[int]) -> Sequence:
 
 
 def _emission_kernel():
-    """The compiled emission kernel (`feature_kernels.sum_emissions`: `crf_kernels.sum_emissions` with
-    the table's rows asked for ahead), or None for the numpy code."""
+    """The compiled emission kernel (`feature_kernels.sum_emissions`), or None for the numpy code."""
     kernels = _feature_kernels()
     return None if kernels is None else kernels.sum_emissions
 
