@@ -56,6 +56,16 @@ def _jit(function):
     return numba.njit(cache=False, **_OPTIONS)(function)
 
 
+@_jit
+def same_run(stored, at, source, first, count):
+    """Whether stored[at:at + count] equals source[first:first + count] item by item: the key check of
+    the compiled hash tables (tokenizer pieces, token types), whatever their item types."""
+    for i in range(count):
+        if stored[at + i] != source[first + i]:
+            return False
+    return True
+
+
 def _jit_cached(function):
     """A kernel, its machine code cached in __pycache__ beside this module (or numba's user cache).
 

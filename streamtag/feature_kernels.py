@@ -21,7 +21,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 # The decode kernels' decorators: same options, machine code cached beside this module.
-from streamtag.crf_kernels import _jit, _jit_cached
+from streamtag.crf_kernels import _jit, _jit_cached, same_run
 
 
 @_jit_cached
@@ -162,18 +162,7 @@ def _find(slots, hash_bits, arena, h, texts, a, b, kinds, c, d):
             return 0, slot
         if slots[slot, SLOT_HASH] == signed_hash and slots[slot, SLOT_LENGTHS] == lengths:
             at = slots[slot, SLOT_START]
-            same = True
-            for i in range(b - a):
-                if arena[at + i] != texts[a + i]:
-                    same = False
-                    break
-            if same:
-                at += b - a
-                for i in range(d - c):
-                    if arena[at + i] != kinds[c + i]:
-                        same = False
-                        break
-            if same:
+            if same_run(arena, at, texts, a, b - a) and same_run(arena, at + b - a, kinds, c, d - c):
                 return found, slot
         slot = (slot + 1) & probe_mask
 

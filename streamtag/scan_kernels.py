@@ -32,7 +32,7 @@ from llvmlite import ir
 from numba import types
 from numba.extending import intrinsic
 
-from streamtag.crf_kernels import _jit, _jit_cached
+from streamtag.crf_kernels import _jit, _jit_cached, same_run
 from streamtag.tokenize import KINDS
 
 __all__ = ["MAX_PIECE", "RULES_SCANNED", "BatchKernels", "batch_kernels", "scan", "scanner"]
@@ -997,15 +997,9 @@ def _find(cp, a, b, h, slots, hashes, pieces, arena):
         found = slots[i]
         if found < 0:
             return i, -1
-        if hashes[found] == h and pieces[found, KEY_LENGTH] == length:
-            start = pieces[found, KEY_START]
-            same = True
-            for j in range(length):
-                if arena[start + j] != cp[a + j]:
-                    same = False
-                    break
-            if same:
-                return i, found
+        if hashes[found] == h and pieces[found, KEY_LENGTH] == length and same_run(
+                arena, pieces[found, KEY_START], cp, a, length):
+            return i, found
         i = (i + 1) & mask
 
 
