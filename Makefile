@@ -10,7 +10,7 @@ $(STAMP): pyproject.toml
 	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet -e '.[test]'
 	# Compile the numba kernels once now (about a minute of CPU) rather than in the first daemon or test.
-	$(PY) -c 'from streamtag import crf_kernels as c, feature_kernels as f, scan_kernels as s; c.load(); f.load(); s.scanner()'
+	$(PY) -c 'from streamtag import crf_kernels as c, feature_kernels as f, scan_kernels as s, record_kernels as r; c.load(); f.load(); s.scanner(); r.load()'
 	touch $(STAMP)
 
 test: $(STAMP)

@@ -14,6 +14,8 @@ import gc
 from contextlib import contextmanager
 from typing import Callable, Iterator, Sequence, Union
 
+import numpy as np
+
 from streamtag import records
 from streamtag.decode import DecodedLine
 from streamtag.tagger import TaggedLine, Tagger
@@ -119,9 +121,57 @@ def encode_batch(decoded: Sequence[Decoded], tagged: Sequence[TaggedLine], model
     review_bytes = b""
     if want_review and doubtful:
         # The output records were encoded and freed; the few doubtful ones are made again.
-        results, *columns = ([column[i] for i in doubtful] for column in (tagged, sources, offsets, line_numbers, flags))
-        chosen_fields = None if fields is None else [fields[i] for i in doubtful]
-        review_records = records.make_records(results, model_id, [True] * len(doubtful), *columns, chosen_fields)
-        review_bytes = records.encode([records.make_review_record(record, result, threshold)
-                                       for record, result in zip(review_records, results)])
+        review_bytes = _review_bytes([tagged[i] for i in doubtful], doubtful, model_id, threshold, sources, offsets,
+                                     line_numbers, flags, fields)
     return output, review_bytes, len(doubtful)
+
+
+def tag_and_encode(tagger: Tagger, decoded: Sequence[Decoded], threshold: float, review_below: float | None,
+                   sources: Sequence[str | None], offsets: Sequence[int | None],
+                   line_numbers: Sequence[int | None], read_flags: Sequence[Sequence[str]],
+                   want_review: bool = True, log: Callable[[str], None] | None = None) -> tuple[bytes, bytes, int]:
+    """``encode_batch(decoded, tag_decoded(tagger, decoded, review_below, log), ...)``: the same bytes.
+
+    A batch of plain lines (the usual case) has its records written by the compiled record writer
+    from the tagger's arrays (`records.encode_tagged_batch`), without a TaggedLine per line or a dict
+    per record; only its lines going to review are made as objects, for their review records.
+    """
+    if _all_plain(decoded):
+        encoded = _tag_and_encode_plain(tagger, list(decoded), threshold, review_below, sources, offsets,
+                                        line_numbers, read_flags, want_review)
+        if encoded is not None:
+            return encoded
+    tagged = tag_decoded(tagger, decoded, review_below, log)
+    return encode_batch(decoded, tagged, tagger.model_id, threshold, sources, offsets, line_numbers, read_flags,
+                        want_review)
+
+
+def _tag_and_encode_plain(tagger: Tagger, texts: list[str], threshold: float, review_below: float | None,
+                          sources, offsets, line_numbers, read_flags, want_review: bool) -> tuple[bytes, bytes, int] | None:
+    """`tag_and_encode` of plain lines through the record writer; None to take the general path."""
+    try:
+        tagged = tagger.tag_batch(texts, review_below=review_below)
+    except Exception:  # noqa: BLE001 (the general path tags again, logs, and falls back line by line)
+        return None
+    reviews = tagged.confidence < threshold  # (B,) as encode_batch decides, float for float
+    output = records.encode_tagged_batch(tagged, tagger.model_id, reviews, sources, offsets, line_numbers,
+                                         read_flags)
+    if output is None:  # something the writer leaves to orjson: the dict path, on the same tagging
+        return encode_batch(texts, tagged.tagged_lines(), tagger.model_id, threshold, sources, offsets,
+                            line_numbers, read_flags, want_review)
+    doubtful = np.flatnonzero(reviews).tolist()
+    review_bytes = b""
+    if want_review and doubtful:
+        review_bytes = _review_bytes([tagged.line(i) for i in doubtful], doubtful, tagger.model_id, threshold,
+                                     sources, offsets, line_numbers, read_flags, None)
+    return output, review_bytes, len(doubtful)
+
+
+def _review_bytes(results: list[TaggedLine], doubtful: list[int], model_id: str, threshold: float, sources,
+                  offsets, line_numbers, flags, fields) -> bytes:
+    """Review records of the lines ``doubtful`` (their tagged ``results``), with reason and runner-up."""
+    columns = ([column[i] for i in doubtful] for column in (sources, offsets, line_numbers, flags))
+    chosen_fields = None if fields is None else [fields[i] for i in doubtful]
+    review_records = records.make_records(results, model_id, [True] * len(doubtful), *columns, chosen_fields)
+    return records.encode([records.make_review_record(record, result, threshold)
+                           for record, result in zip(review_records, results)])

@@ -22,7 +22,7 @@ import orjson
 from streamtag import crf
 from streamtag.errors import ConfigError, DataError
 from streamtag.model import load_model
-from streamtag.batch import encode_batch, fewer_collections, tag_decoded
+from streamtag.batch import fewer_collections, tag_and_encode
 from streamtag.decode import decode_lines
 from streamtag.tagger import Tagger
 from streamtag.tokenize import tokenize
@@ -134,11 +134,9 @@ def _tagging_pass(tagger: Tagger, batches: list[list[bytes]], sink: Path) -> Non
     """What `tag` and the daemon do with a batch: decode, tag, records (output and review) to a file."""
     with open(sink, "wb") as out:
         for chunk in batches:
-            decoded = decode_lines(chunk)
-            tagged = tag_decoded(tagger, decoded, review_below=0.5)
             none = [None] * len(chunk)
-            output, review, _ = encode_batch(decoded, tagged, tagger.model_id, 0.5, none, none, none,
-                                             [()] * len(chunk))
+            output, review, _ = tag_and_encode(tagger, decode_lines(chunk), 0.5, 0.5, none, none, none,
+                                               [()] * len(chunk))
             out.write(output)
         out.flush()
         os.fsync(out.fileno())

@@ -152,7 +152,7 @@ def run_evaluate(args: argparse.Namespace) -> int:
 # -- tag ----------------------------------------------------------------------------------------
 
 def run_tag(args: argparse.Namespace) -> int:
-    from streamtag.batch import encode_batch, fewer_collections, tag_decoded
+    from streamtag.batch import fewer_collections, tag_and_encode
     from streamtag.tagger import Tagger
 
     if not 0.0 <= args.threshold <= 1.0:
@@ -164,11 +164,10 @@ def run_tag(args: argparse.Namespace) -> int:
     with fewer_collections():
         for batch in _batches(_input_lines(args.files), args.batch):
             decoded = [line for _, _, _, line in batch]
-            tagged = tag_decoded(tagger, decoded, None)
-            output, _, _ = encode_batch(decoded, tagged, tagger.model_id, args.threshold,
-                                        sources=[b[0] for b in batch], offsets=[b[1] for b in batch],
-                                        line_numbers=[b[2] for b in batch], read_flags=[()] * len(batch),
-                                        want_review=False)
+            output, _, _ = tag_and_encode(tagger, decoded, args.threshold, None,
+                                          sources=[b[0] for b in batch], offsets=[b[1] for b in batch],
+                                          line_numbers=[b[2] for b in batch], read_flags=[()] * len(batch),
+                                          want_review=False)
             out.write(output)
             out.flush()
     return 0
@@ -190,13 +189,13 @@ def _input_lines(files: list[str]) -> Iterator[tuple]:
 
 
 def _lines_of(handle, source: str | None):
-    from streamtag.decode import decode_text
+    from streamtag.decode import decode_lines
 
     offset = 0
     for line_no, raw in enumerate(handle, start=1):
         start = offset
         offset += len(raw)
-        yield source, start, line_no, decode_text(raw.rstrip(b"\n").rstrip(b"\r"))
+        yield source, start, line_no, decode_lines([raw.rstrip(b"\n").rstrip(b"\r")])[0]
 
 
 def _batches(items: Iterable, size: int) -> Iterator[list]:

@@ -38,7 +38,7 @@ from typing import Any, Callable
 import numpy as np
 import orjson
 
-from streamtag.batch import encode_batch, fewer_collections, tag_decoded
+from streamtag.batch import fewer_collections, tag_and_encode
 from streamtag.checkpoint import State, fsync_directory, load_state, recover_outputs, save_state, write_file_atomically
 from streamtag.config import WatchConfig, load_watch_config
 from streamtag.decode import decode_json, decode_lines
@@ -632,10 +632,9 @@ class Daemon:
             decoded = [decode_json(data, config.text_field) for data in lines.datas]
         else:
             decoded = decode_lines(lines.datas)
-        tagged = tag_decoded(self.tagger, decoded, config.review_threshold, self.log)
-        return encode_batch(
-            decoded, tagged, self.tagger.model_id, config.review_threshold, sources=lines.paths,
-            offsets=lines.starts, line_numbers=lines.line_nos, read_flags=lines.flags,
+        return tag_and_encode(
+            self.tagger, decoded, config.review_threshold, config.review_threshold, sources=lines.paths,
+            offsets=lines.starts, line_numbers=lines.line_nos, read_flags=lines.flags, log=self.log,
         )
 
     # -- model swap ----------------------------------------------------------------------------

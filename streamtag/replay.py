@@ -337,19 +337,18 @@ def _init_worker(settings: TagSettings, ignore_interrupt: bool) -> None:
 def _tag_chunk(chunk: Chunk) -> tuple[bytes, bytes, int]:
     """Chunk -> (output bytes, review bytes, lines sent to review), exactly as the daemon builds them."""
     # Imported here: the CLI imports this module to build its parser, and these pull in numpy/scipy.
-    from streamtag.batch import encode_batch, tag_decoded
-    from streamtag.decode import decode_json, decode_text
+    from streamtag.batch import tag_and_encode
+    from streamtag.decode import decode_json, decode_lines
 
     tagger = _worker["tagger"]
     settings: TagSettings = _worker["settings"]
     if settings.input_format == "json":
         decoded = [decode_json(raw, settings.text_field) for raw in chunk.raw]
     else:
-        decoded = [decode_text(raw) for raw in chunk.raw]
-    tagged = tag_decoded(tagger, decoded, settings.threshold if settings.want_review else None)
-    return encode_batch(decoded, tagged, tagger.model_id, settings.threshold, sources=chunk.sources,
-                        offsets=chunk.offsets, line_numbers=chunk.line_numbers, read_flags=chunk.flags,
-                        want_review=settings.want_review)
+        decoded = decode_lines(chunk.raw)
+    return tag_and_encode(tagger, decoded, settings.threshold, settings.threshold if settings.want_review else None,
+                          sources=chunk.sources, offsets=chunk.offsets, line_numbers=chunk.line_numbers,
+                          read_flags=chunk.flags, want_review=settings.want_review)
 
 
 # -- the progress sidecar ----------------------------------------------------------------------------

@@ -50,6 +50,70 @@ class TaggedLine:
 
 
 @dataclass(slots=True)
+class TaggedBatch:
+    """A tagged batch of B lines as arrays (S spans in all, ordered by line, then by position).
+
+    `tagged_lines` makes the objects; the record writer (`records.encode_tagged_batch`) reads the
+    arrays directly, which saves making a TaggedLine per line and a TaggedSpan per span.
+    """
+
+    lines: list[str]  # (B,) the texts tagged
+    span_line: np.ndarray  # (S,) int64 line index of each span
+    span_start: np.ndarray  # (S,) int64 character offset into its line, inclusive
+    span_end: np.ndarray  # (S,) int64 character offset, exclusive
+    span_type: np.ndarray  # (S,) int64 index into type_names
+    span_confidence: np.ndarray  # (S,) float64
+    confidence: np.ndarray  # (B,) float64 line confidence
+    n_tokens: np.ndarray  # (B,) int64
+    split: np.ndarray | None  # (B,) bool, lines decoded in windows; None: no line was
+    type_names: np.ndarray  # (types,) object, entity type names
+    # Objects of the lines below the review threshold, with reason and runner-up, by line index.
+    described: dict[int, TaggedLine] = field(default_factory=dict)
+
+    @classmethod
+    def empty(cls, type_names: np.ndarray) -> TaggedBatch:
+        none = np.zeros(0, dtype=np.int64)
+        return cls([], none, none, none, none, np.zeros(0), np.zeros(0), none, None, type_names)
+
+    def span_bounds(self) -> np.ndarray:
+        """(B + 1,) line b's spans are [bounds[b], bounds[b + 1])."""
+        return np.searchsorted(self.span_line, np.arange(len(self.lines) + 1))
+
+    def tagged_lines(self) -> list[TaggedLine]:
+        """One TaggedLine per line (the described ones as they are)."""
+        char_start = self.span_start.tolist()
+        char_end = self.span_end.tolist()
+        # Every step is a C-level map over the batch's spans or lines (a Python loop per span cost
+        # ~1.5 us a span).
+        span_texts = list(map(str.__getitem__, map(self.lines.__getitem__, self.span_line.tolist()),
+                              map(slice, char_start, char_end)))
+        spans = list(map(TaggedSpan, char_start, char_end, self.type_names.take(self.span_type).tolist(),
+                         span_texts, self.span_confidence.tolist()))
+        bounds = self.span_bounds().tolist()
+        results = list(map(TaggedLine, self.lines, map(spans.__getitem__, map(slice, bounds[:-1], bounds[1:])),
+                           self.confidence.tolist(), self.n_tokens.tolist()))
+        if self.split is not None:
+            for line_index in np.flatnonzero(self.split).tolist():
+                results[line_index].flags.append("split")
+        for line_index, described in self.described.items():
+            results[line_index] = described
+        return results
+
+    def line(self, index: int) -> TaggedLine:
+        """The TaggedLine of one line (its described object if it has one)."""
+        if index in self.described:
+            return self.described[index]
+        first, stop = np.searchsorted(self.span_line, [index, index + 1]).tolist()
+        text = self.lines[index]
+        spans = [TaggedSpan(start, end, self.type_names[type_index], text[start:end], confidence)
+                 for start, end, type_index, confidence in zip(
+                     self.span_start[first:stop].tolist(), self.span_end[first:stop].tolist(),
+                     self.span_type[first:stop].tolist(), self.span_confidence[first:stop].tolist())]
+        flags = ["split"] if self.split is not None and self.split[index] else []
+        return TaggedLine(text, spans, float(self.confidence[index]), int(self.n_tokens[index]), flags)
+
+
+@dataclass(slots=True)
 class _Batch:
     """Token sequences cut from the lines: one per line, or several windows for a long line.
 
@@ -100,8 +164,13 @@ class Tagger:
 
     def tag(self, lines: list[str], review_below: float | None = None) -> list[TaggedLine]:
         """Tag a batch of lines. Lines whose confidence is below ``review_below`` get a runner-up."""
+        return self.tag_batch(lines, review_below).tagged_lines()
+
+    def tag_batch(self, lines: list[str], review_below: float | None = None) -> TaggedBatch:
+        """`tag`, with the results left as arrays (objects only for the lines below ``review_below``,
+        which get the reason and runner-up a reviewer sees)."""
         if not lines:
-            return []
+            return TaggedBatch.empty(self._type_names)
         tokens = self.tokenizer.tokenize_lines(lines)
         type_rows = self.scorer.type_rows(tokens.texts, tokens.kinds, tokens.keys, tokens.generation)
         batch = self._cut(tokens.counts)
@@ -109,13 +178,14 @@ class Tagger:
             type_rows = type_rows[batch.token_index]
         emissions = self.scorer.emissions(type_rows, batch.lengths)
         decoded = crf.decode(emissions, batch.lengths, self.trans, self.start, self.end)
-        results, line_confidence = self._assemble(lines, tokens, batch, decoded, emissions)
+        tagged = self._assemble(lines, tokens, batch, decoded, emissions)
         if review_below is not None:
-            doubtful = np.flatnonzero(line_confidence < review_below)  # (D,) lines, usually a few in a hundred
+            doubtful = np.flatnonzero(tagged.confidence < review_below)  # (D,) lines, usually a few in a hundred
             if doubtful.size:
-                self._describe_weakest(results, tokens, batch, decoded, doubtful)
-                self._add_runner_up(results, tokens, batch, emissions, decoded.fb, doubtful)
-        return results
+                tagged.described = {int(i): tagged.line(int(i)) for i in doubtful}
+                self._describe_weakest(tagged.described, tokens, batch, decoded, doubtful)
+                self._add_runner_up(tagged.described, tokens, batch, emissions, decoded.fb, doubtful)
+        return tagged
 
     # -- cutting lines into sequences -------------------------------------------------------------
 
@@ -173,10 +243,8 @@ class Tagger:
         pos_in_line = np.arange(batch.lengths.sum()) - seq_offsets[seq_of_token] + batch.seq_first_token[seq_of_token]
         return (pos_in_line >= batch.owned_from[seq_of_token]) & (pos_in_line < batch.owned_to[seq_of_token])
 
-    def _assemble(self, lines, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded,
-                  emissions) -> tuple[list[TaggedLine], np.ndarray]:
-        """Label paths of the sequences -> spans and confidences per line, vectorised over the batch;
-        also the lines' confidences (B,) as an array.
+    def _assemble(self, lines, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded, emissions) -> TaggedBatch:
+        """Label paths of the sequences -> spans and confidences per line, vectorised over the batch.
 
         Windows of a split line overlap; each token's label comes from the window that owns it, so
         the owned tokens, in order, are exactly the lines' tokens. Chunks are read off that merged
@@ -198,21 +266,12 @@ class Tagger:
         np.minimum.at(line_min, span_line, span_conf)
 
         span_token = line_offsets[span_line] + span_first
-        char_start = tokens.starts[span_token].tolist()
-        char_end = tokens.ends[span_token + (span_stop - span_first) - 1].tolist()
-        # Spans come ordered by line: each line takes a slice of the batch's spans. Every step is a
-        # C-level map over the batch's spans or lines (a Python loop per span cost ~1.5 us a span).
-        span_texts = list(map(str.__getitem__, map(lines.__getitem__, span_line.tolist()),
-                              map(slice, char_start, char_end)))
-        spans = list(map(TaggedSpan, char_start, char_end, self._type_names.take(span_type).tolist(), span_texts,
-                         span_conf.tolist()))
-        bounds = np.searchsorted(span_line, np.arange(len(lines) + 1)).tolist()
-        results = list(map(TaggedLine, lines, map(spans.__getitem__, map(slice, bounds[:-1], bounds[1:])),
-                           line_min.tolist(), line_lengths.tolist()))
+        split = None
         if batch.token_index is not None:
-            for line_index in np.flatnonzero(np.bincount(batch.seq_line, minlength=len(lines)) > 1).tolist():
-                results[line_index].flags.append("split")
-        return results, line_min
+            split = np.bincount(batch.seq_line, minlength=len(lines)) > 1
+        return TaggedBatch(lines, span_line, tokens.starts[span_token],
+                           tokens.ends[span_token + (span_stop - span_first) - 1], span_type, span_conf, line_min,
+                           line_lengths, split, self._type_names)
 
     def _span_confidence(self, batch, fb, emissions, line_conf, line_offsets,
                          span_line, span_first, span_stop, span_type) -> np.ndarray:
@@ -241,10 +300,10 @@ class Tagger:
             conf[s] = line_conf[first : line_offsets[span_line[s]] + span_stop[s]].min()
         return conf
 
-    def _describe_weakest(self, results, tokens: TokenBatch, batch: _Batch, decoded: crf.Decoded,
-                          doubtful: np.ndarray) -> None:
+    def _describe_weakest(self, results: dict[int, TaggedLine], tokens: TokenBatch, batch: _Batch,
+                          decoded: crf.Decoded, doubtful: np.ndarray) -> None:
         """Name what set the confidence of each doubtful line (``doubtful`` (D,) line indices, those
-        going to review): its weakest span, else its weakest token (found on the line's owned tokens:
+        going to review; ``results`` their objects by line index): its weakest span, else its weakest token (found on the line's owned tokens:
         the windows' overlap never decides a label)."""
         line_labels = self._owned(batch, decoded.labels)
         line_conf = self._owned(batch, decoded.confidence)
@@ -265,17 +324,19 @@ class Tagger:
 
     # -- runner-up labelling for doubtful lines -----------------------------------------------------
 
-    def _add_runner_up(self, results, tokens: TokenBatch, batch: _Batch, emissions, fb, doubtful: np.ndarray) -> None:
-        """Second-best path for the doubtful lines (``doubtful`` (D,) line indices; only those: n-best
-        costs k times Viterbi).
+    def _add_runner_up(self, results: dict[int, TaggedLine], tokens: TokenBatch, batch: _Batch, emissions, fb,
+                       doubtful: np.ndarray) -> None:
+        """Second-best path for the doubtful lines (``doubtful`` (D,) line indices, ``results`` their
+        objects by line index; only those: n-best costs k times Viterbi).
 
         Split lines get none: the second-best path of one window is not a labelling of the line.
         """
         if batch.token_index is None:  # one sequence per line: a line's index is its sequence's
             seqs = doubtful
         else:
-            single = np.bincount(batch.seq_line, minlength=len(results)) == 1
-            is_doubtful = np.zeros(len(results), dtype=bool)
+            n_lines = tokens.counts.size
+            single = np.bincount(batch.seq_line, minlength=n_lines) == 1
+            is_doubtful = np.zeros(n_lines, dtype=bool)
             is_doubtful[doubtful] = True
             seqs = np.flatnonzero((is_doubtful & single)[batch.seq_line])
         if not seqs.size:

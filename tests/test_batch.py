@@ -19,7 +19,7 @@ import pytest
 
 from daemon_support import build_tiny_model
 from streamtag import records
-from streamtag.batch import GC_YOUNG_THRESHOLD, encode_batch, fewer_collections, tag_decoded
+from streamtag.batch import GC_YOUNG_THRESHOLD, encode_batch, fewer_collections, tag_and_encode, tag_decoded
 from streamtag.decode import DecodedLine, decode_json, decode_lines, decode_text
 from streamtag.model import load_model
 from streamtag.tagger import TaggedLine, Tagger
@@ -86,6 +86,39 @@ def batch_path(tagger: Tagger, decoded, read_flags) -> tuple[bytes, bytes, int]:
                         read_flags=read_flags)
 
 
+def one_step(tagger, decoded, read_flags, review_below=THRESHOLD, want_review=True) -> tuple[bytes, bytes, int]:
+    """``tag_and_encode``: plain batches through the compiled record writer."""
+    n = len(decoded)
+    return tag_and_encode(tagger, decoded, THRESHOLD, review_below, sources=["/var/log/app.log"] * n,
+                          offsets=[100 * i for i in range(n)], line_numbers=list(range(1, n + 1)),
+                          read_flags=read_flags, want_review=want_review)
+
+
+@pytest.mark.parametrize("datas", [PLAIN, PLAIN + DIRTY, DIRTY, [DIRTY[3]] + PLAIN, []],
+                         ids=["plain", "plain+dirty", "dirty", "one-escape", "empty"])
+@pytest.mark.parametrize("with_read_flags", [False, True])
+def test_tag_and_encode_equals_tagging_then_encoding(tagger, datas, with_read_flags):
+    # the per-line reference (orjson's bytes of make_record, RFC 8259 section 4: member order counts)
+    read_flags = [(("truncated",) if with_read_flags and i % 3 == 0 else ()) for i in range(len(datas))]
+    slow = reference(tagger, [decode_text(data) for data in datas], read_flags)
+    assert one_step(tagger, decode_lines(datas), read_flags) == slow
+    assert one_step(tagger, [decode_text(data) for data in datas], read_flags) == slow
+
+
+def test_tag_and_encode_on_the_bundled_model_with_reviews_and_split_lines():
+    # many lines below the threshold (review records with reason and runner-up) and lines longer
+    # than the token cap (decoded in windows, flagged "split"), against the per-line reference
+    small = Tagger(load_model(None), max_tokens=8, window_overlap=3)
+    datas = [line * (1 + i % 3) for i, line in enumerate(PLAIN * 4)] + [
+        "Über-host ñandú-07 «quoted» 東京 relay\\path \"x\"".encode()]
+    read_flags = [()] * len(datas)
+    slow = reference(small, [decode_text(data) for data in datas], read_flags)
+    assert slow[2] > 0 and b'"split"' in slow[0]  # the case is exercised
+    assert one_step(small, decode_lines(datas), read_flags) == slow
+    output, review, n_review = one_step(small, decode_lines(datas), read_flags, review_below=None, want_review=False)
+    assert (output, review, n_review) == (slow[0], b"", slow[2])  # no described lines asked: no review bytes
+
+
 @pytest.mark.parametrize("datas", [PLAIN, PLAIN + DIRTY, DIRTY, [DIRTY[3]] + PLAIN, []],
                          ids=["plain", "plain+dirty", "dirty", "one-escape", "empty"])
 @pytest.mark.parametrize("with_read_flags", [False, True])
@@ -134,6 +167,11 @@ def test_a_failing_batch_is_tagged_line_by_line(tagger):
     assert len(logged) == 1 and "one by one" in logged[0]
     assert results[0].flags == ["tag_error"] and results[0].text == PLAIN[0].decode()
     assert all(result.flags != ["tag_error"] for result in results[1:])
+    # tag_and_encode with a tagger that fails (this one has no tag_batch at all): the same fallback
+    n = len(PLAIN)
+    output, _, _ = tag_and_encode(Flaky(), decode_lines(PLAIN), THRESHOLD, THRESHOLD, ["/x"] * n, list(range(n)),
+                                  list(range(n)), [()] * n, log=logged.append)
+    assert len(logged) == 2 and output.count(b"\n") == n and b'"tag_error"' in output.split(b"\n")[0]
 
 
 def test_fewer_collections_raises_the_young_threshold_and_restores_it():
