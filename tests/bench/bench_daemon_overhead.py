@@ -5,12 +5,14 @@
 
 The real watch loop (``Daemon.run``: follow, decode, tag, records, JSON, write, fsync, checkpoint,
 latency bookkeeping) runs in this process over a file of demo lines that is already complete, with
-``Tagger.tag`` replaced by a table lookup of results the real tagger computed once for each distinct
-line. Everything but tagging is therefore measured; the budget for it is 12 us per line (the goal of
+``Tagger.tag`` and ``Tagger.tag_batch`` replaced by a table lookup of results the real tagger computed
+once for each distinct line. Everything but tagging is therefore measured (the records, written by
+the compiled record writer from the batch's arrays, included); the budget for it is 12 us per line (the goal of
 20,000 lines/s end to end is 50 us per line in all).
 
 Printed: the loop's us/line (best of ``--runs``), each stage on its own (read+split, decode,
-records, JSON encoding, write+fsync+checkpoint) and a cProfile of one run.
+records through the compiled writer, records and JSON through the dict path, write+fsync+checkpoint)
+and a cProfile of one run.
 
 Demo lines are slow to generate (about 110 us each), so the file is cached in the temp folder
 (``streamtag-bench-cache``) and reused by later runs. ``--dirty-share`` mixes in lines with broken
@@ -41,7 +43,8 @@ from streamtag.daemon import BatchWriter, Daemon, OutputFile  # noqa: E402
 from streamtag.decode import decode_text  # noqa: E402
 from streamtag.follow import Follower  # noqa: E402
 from streamtag.model import default_model_path, load_model  # noqa: E402
-from streamtag.tagger import TaggedLine, TaggedSpan, Tagger  # noqa: E402
+from streamtag.tagger import TaggedBatch, TaggedLine, TaggedSpan, Tagger  # noqa: E402
+import numpy as np  # noqa: E402
 
 BUDGET_US = 12.0
 REVIEW_BELOW = 0.5
@@ -102,10 +105,30 @@ def _fresh(result: TaggedLine) -> TaggedLine:
                       result.runner_up_probability)
 
 
+def batch_of(lines: list[str], results: list[TaggedLine], type_names, review_below) -> TaggedBatch:
+    """The TaggedBatch the real ``tag_batch`` gives for these results (spans as arrays, the lines
+    below ``review_below`` as described objects)."""
+    index = {name: i for i, name in enumerate(type_names.tolist())}
+    spans = [(line, span) for line, result in enumerate(results) for span in result.spans]
+    column = lambda values, dtype=np.int64: np.array(values, dtype=dtype)  # noqa: E731
+    described = {} if review_below is None else {
+        i: _fresh(result) for i, result in enumerate(results) if result.confidence < review_below}
+    split = [("split" in result.flags) for result in results]
+    return TaggedBatch(list(lines), column([line for line, _ in spans]), column([s.start for _, s in spans]),
+                       column([s.end for _, s in spans]), column([index[s.label] for _, s in spans]),
+                       column([s.confidence for _, s in spans], np.float64),
+                       column([r.confidence for r in results], np.float64), column([r.n_tokens for r in results]),
+                       column(split, bool) if any(split) else None, type_names, described)
+
+
 def install_free_tagger(table: dict) -> None:
-    """Replace ``Tagger.tag`` by a lookup that copies the precomputed results; lines not in the
-    table (the model probe) are really tagged. Its CPU time is added up in ``STAND_IN_CPU``."""
-    real_tag = Tagger.tag
+    """Replace ``Tagger.tag`` and ``Tagger.tag_batch`` by lookups of the precomputed results; lines
+    not in the table (the model probe) are really tagged. Their CPU time is added up in
+    ``STAND_IN_CPU``."""
+    real_tag_batch = Tagger.tag_batch
+
+    def real_tag(self, lines, review_below=None):
+        return real_tag_batch(self, lines, review_below).tagged_lines()
 
     def lookup_tag(self, lines, review_below=None):
         began = time.process_time()
@@ -117,7 +140,15 @@ def install_free_tagger(table: dict) -> None:
         STAND_IN_CPU[0] += time.process_time() - began
         return found
 
+    def lookup_tag_batch(self, lines, review_below=None):
+        results = lookup_tag(self, lines, review_below)
+        began = time.process_time()
+        made = batch_of(lines, results, self._type_names, review_below)
+        STAND_IN_CPU[0] += time.process_time() - began
+        return made
+
     Tagger.tag = lookup_tag
+    Tagger.tag_batch = lookup_tag_batch
 
 
 # -- the whole loop ---------------------------------------------------------------------------------
@@ -180,7 +211,7 @@ def _best(function, runs: int) -> float:
     return min(timeit.Timer(function, timer=time.process_time).repeat(number=1, repeat=runs))
 
 
-def stage_costs(work: Path, source: Path, model_id: str, batch: int, runs: int) -> dict[str, float]:
+def stage_costs(work: Path, source: Path, model_path: Path, model_id: str, batch: int, runs: int) -> dict[str, float]:
     """Seconds for each stage over the whole file, best of ``runs``."""
     def read_all():
         """The daemon's way of reading: columns (read_batch) where the follower has them."""
@@ -208,8 +239,18 @@ def stage_costs(work: Path, source: Path, model_id: str, batch: int, runs: int) 
             return [decode_text(data) for data in datas]
     costs["decode"] = _best(lambda: [decode_lines([raw.data for raw in lines]) for lines in batches], runs)
     decoded = [decode_lines([raw.data for raw in lines]) for lines in batches]
-    tagger = Tagger.__new__(Tagger)  # only ``tag`` (the lookup) is used
+    tagger = Tagger(load_model(model_path))  # only ``tag`` and ``tag_batch`` (the lookups) are used
     tagged = [batch_module.tag_decoded(tagger, lines, REVIEW_BELOW) for lines in decoded]
+    arrays = [tagger.tag_batch(lines, REVIEW_BELOW) for lines in decoded]
+
+    def write_records():
+        return [records.encode_tagged_batch(made, model_id, made.confidence < REVIEW_BELOW, [raw.path for raw in raws],
+                                            [raw.start for raw in raws], [raw.line_no for raw in raws],
+                                            [raw.flags for raw in raws])
+                for made, raws in zip(arrays, batches)]
+
+    if hasattr(records, "encode_tagged_batch"):
+        costs["records (compiled writer)"] = _best(write_records, runs)
 
     def make_records():
         made = []
@@ -224,9 +265,9 @@ def stage_costs(work: Path, source: Path, model_id: str, batch: int, runs: int) 
                                                  raw.flags) for result, review, raw in zip(results, reviews, raws)])
         return made
 
-    costs["records"] = _best(make_records, runs)
+    costs["records (dict path)"] = _best(make_records, runs)
     made = make_records()
-    costs["json"] = _best(lambda: [records.encode(m) for m in made], runs)
+    costs["json (dict path)"] = _best(lambda: [records.encode(m) for m in made], runs)
     encoded = [records.encode(m) for m in made]
 
     def write_sync_checkpoint():
@@ -276,10 +317,10 @@ def main(argv: list[str] | None = None) -> int:
         if not args.no_stages:
             model_id = Tagger(load_model(model)).model_id
             config_batch = args.batch or load_watch_config(None, {}).batch_max_lines
-            costs = stage_costs(work, source, model_id, config_batch, args.runs)
+            costs = stage_costs(work, source, model, model_id, config_batch, args.runs)
             print("stages on their own (CPU us/line, best of %d): " % args.runs
                   + ", ".join(f"{name} {value:.2f}" for name, value in costs.items())
-                  + f"; sum {sum(costs.values()):.2f}")
+                  + f"; sum of the daemon's stages {sum(v for k, v in costs.items() if 'dict path' not in k):.2f}")
         if not args.no_profile:
             profiler = cProfile.Profile()
             run_daemon(work / "profiled", source, args.lines, model, args.batch, profiler)
