@@ -263,7 +263,11 @@ class Tagger:
         nonempty = line_lengths > 0
         if nonempty.any():
             line_min[nonempty] = np.minimum.reduceat(line_conf, line_offsets[nonempty])
-        np.minimum.at(line_min, span_line, span_conf)
+        if span_line.size:  # spans come ordered by line: one reduceat per run of a line's spans
+            # (np.minimum.at, the obvious call, cost about 1.3 us a line)
+            firsts = np.flatnonzero(np.concatenate(([True], span_line[1:] != span_line[:-1])))
+            with_spans = span_line[firsts]
+            line_min[with_spans] = np.minimum(line_min[with_spans], np.minimum.reduceat(span_conf, firsts))
 
         span_token = line_offsets[span_line] + span_first
         split = None
