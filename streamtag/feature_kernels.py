@@ -395,6 +395,9 @@ class Kernels(NamedTuple):
     sum_emissions: Callable
 
 
+_TAGS = np.frombuffer(b"a", dtype=np.uint8)    # read-only, as features' value lookup tags
+
+
 def _warm_up(kernels: Kernels) -> None:
     """Compile (or load from the cache) the signatures `features` uses, on tiny inputs."""
     kernels.sum_block_rows(np.zeros((2, 4)), np.array([0, -1], dtype=np.int64), np.array([[1, 0]], dtype=np.int64),
@@ -408,12 +411,18 @@ def _warm_up(kernels: Kernels) -> None:
     kernels.place_types(data, index, index + 1, data, index, index + 1, np.zeros((4, 4), dtype=np.int64), 2,
                         np.zeros(4, dtype=np.uint8), np.ones(2, dtype=np.int64), 2, 1, np.empty(1, dtype=np.int64),
                         np.empty(1, dtype=np.int64))
+    # The type index's keys: a text's code points (writable uint32, as the tokenizer's) and a kind id.
+    points = np.ones(1, dtype=np.uint32)
+    kernels.place_types(points, index, index + 1, points, index, index + 1, np.zeros((4, 4), dtype=np.int64), 2,
+                        np.zeros(4, dtype=np.uint32), np.ones(2, dtype=np.int64), 2, 1, np.empty(1, dtype=np.int64),
+                        np.empty(1, dtype=np.int64))
     table_lengths = np.ones(1, dtype=np.int64)
-    kernels.ascii_part_rows(data, index, index + 1, np.zeros(256, dtype=np.uint8), np.zeros(129, dtype=np.int64), 11,
-                            2, 4, np.ones(1, dtype=np.int64), 4, True, np.zeros((4, 4), dtype=np.int64), 2,
-                            np.zeros(4, dtype=np.uint8), np.zeros(2, dtype=np.int64), data, table_lengths,
-                            np.ones(1, dtype=np.bool_), 60, np.full(2, EMPTY_KEY), np.zeros(2, dtype=np.int64), 1,
-                            np.empty((1, 6), dtype=np.int64), np.empty(1, dtype=np.int64))
+    for data in (data, points):     # a new type's text: UTF-8 bytes, or code points (the tokenizer's)
+        kernels.ascii_part_rows(data, index, index + 1, np.zeros(256, dtype=np.uint8), np.zeros(129, dtype=np.int64), 11,
+                                2, 4, np.ones(1, dtype=np.int64), 4, True, np.zeros((4, 4), dtype=np.int64), 2,
+                                np.zeros(4, dtype=np.uint8), np.zeros(2, dtype=np.int64), _TAGS, table_lengths,
+                                np.ones(1, dtype=np.bool_), 60, np.full(2, EMPTY_KEY), np.zeros(2, dtype=np.int64), 1,
+                                np.empty((1, 6), dtype=np.int64), np.empty(1, dtype=np.int64))
     kernels.sum_emissions(np.zeros((2, 2, 1)), np.array([1, 1], dtype=np.int64), np.array([2], dtype=np.int64),
                           np.array([0, 1], dtype=np.int64), np.zeros((4, 1)), 3, 1, True, np.empty((2, 1)))
 

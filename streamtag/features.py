@@ -1113,7 +1113,9 @@ class _TypeScorer:
                encoded: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> None:
         """Write the (M, K, L) score blocks of the M types (texts[m], kind_names[kind_ids[m]]) into out.
 
-        ``encoded``: the texts in UTF-8 if the caller has them, (bytes (D,) uint8, starts (M,), ends (M,))."""
+        ``encoded``: the texts as the caller has them, (items (D,), starts (M,), ends (M,)), the items
+        code points (uint32) or UTF-8 bytes (uint8); texts[m] is then read only if type m is not ASCII
+        (or to name a new shape signature)."""
         n_types = len(texts)
         if n_types == 0:
             return
@@ -1161,14 +1163,15 @@ class _TypeScorer:
         if others < n_types:
             picked = slice(None) if plain is None else plain
             fast_kinds = kind_ids[picked]
-            signature_ids = self._signature_ids(signatures[picked], texts if plain is None else _pick(texts, plain.tolist()))
+            plain_texts = texts if plain is None else _TextsAt(texts, plain)
+            signature_ids = self._signature_ids(signatures[picked], plain_texts)
             rows[picked, 2] = self._class_rows(signature_ids, fast_kinds, kind_names)
             if affixes is not None and affixes.packable(7) < int(table_lengths.max()):
-                self._unpackable_affixes(rows, picked, texts if plain is None else _pick(texts, plain.tolist()))
+                self._unpackable_affixes(rows, picked, plain_texts)
         if not others:
             return rows
         rest = np.flatnonzero(signatures < 0)
-        rest_rows = self._mixed_rows(_pick(texts, rest.tolist()), kind_ids[rest], kind_names, True)
+        rest_rows = self._mixed_rows([texts[m] for m in rest.tolist()], kind_ids[rest], kind_names, True)
         full = np.zeros((n_types, rest_rows.shape[1]), dtype=np.int64)
         full[:, : rows.shape[1]] = rows
         full[rest] = rest_rows
@@ -1479,9 +1482,9 @@ def _collapsed(shapes: list[str]) -> list[str]:
 
 _NO_KIND = object()   # the kind of table rows that hold no type: unequal to any kind a token has
 
-# Key bytes the compiled type index keeps per row it can hold, to begin with (a key is a text and its
-# kind in UTF-8: about a dozen bytes in logs; the index grows when a batch needs more).
-_KEY_BYTES_PER_ROW = 48
+# Key items (code points) the compiled type index keeps per row it can hold, to begin with (a key is a
+# text's code points and its kind id: about a dozen in logs; the index grows when a batch needs more).
+_KEY_ITEMS_PER_ROW = 24
 
 
 @dataclass
@@ -1490,8 +1493,8 @@ class _TypeIndex:
 
     slots: np.ndarray       # (H, 4) int64, H = 2**hash_bits >= 2 * limit
     hash_bits: int
-    arena: np.ndarray       # (A,) uint8 kept keys' bytes
-    state: np.ndarray       # (2,) int64: rows in use (the boundary row 0 counted), arena bytes in use
+    arena: np.ndarray       # (A,) kept keys' items (uint32 code points; uint8 bytes for value lookups)
+    state: np.ndarray       # (2,) int64: rows in use (the boundary row 0 counted), arena items in use
     limit: int              # rows stay below this
 
     @classmethod
@@ -1505,8 +1508,8 @@ class _TypeIndex:
             slots, hash_bits = old.slots, old.hash_bits
         else:
             slots = np.zeros((1 << hash_bits, 4), dtype=np.int64)
-        arena_size = max(limit * _KEY_BYTES_PER_ROW, key_bytes)
-        arena = old.arena if old is not None and old.arena.size >= arena_size else np.zeros(arena_size, np.uint8)
+        arena_size = max(limit * _KEY_ITEMS_PER_ROW, key_bytes)
+        arena = old.arena if old is not None and old.arena.size >= arena_size else np.zeros(arena_size, np.uint32)
         return cls(slots, hash_bits, arena, np.array([1, 0], dtype=np.int64), limit)
 
 
@@ -1530,6 +1533,34 @@ def _pick(items: Sequence, picked: list[int]) -> Sequence:
     if len(picked) == 1:
         return (items[picked[0]],)
     return itemgetter(*picked)(items) if picked else ()
+
+
+class _TextsAt(Sequence):
+    """source[at[m]] for m in range(len(at)): a few texts of a batch, made into str only when read."""
+
+    __slots__ = ("source", "at")
+
+    def __init__(self, source: Sequence[str], at: np.ndarray):
+        self.source, self.at = source, at
+
+    def __len__(self) -> int:
+        return len(self.at)
+
+    def __getitem__(self, m):
+        if isinstance(m, slice):
+            return [self.source[i] for i in self.at[m].tolist()]
+        return self.source[int(self.at[m])]
+
+
+def _picked(texts: Sequence[str], kinds: Sequence[str], picked) -> tuple[Sequence[str], Sequence[str]]:
+    """The texts and kinds of the tokens ``picked`` (an int array, or a slice for all). A tokenizer's
+    lazy texts and kinds (`tokenize.TokenTexts`, `TokenKinds`) make only these str."""
+    if hasattr(texts, "pick") and hasattr(kinds, "pick"):
+        return texts.pick(picked), kinds.pick(picked)
+    if isinstance(picked, slice):
+        return texts, kinds
+    chosen = picked.tolist()
+    return _pick(texts, chosen), _pick(kinds, chosen)
 
 
 def _emission_kernel():
@@ -1572,6 +1603,8 @@ class EmissionScorer:
         self.slot_offsets = self.rows.offsets.astype(np.int64)               # (K,), offsets[0] = 0
         self._kind_ids: dict[str, int] = {}
         self._kind_names: list[str] = []
+        self._kind_range = np.zeros(0, dtype=np.uint32)
+        self._kind_of_code: np.ndarray | None = None
         self._epoch = 0   # counts the table's fresh starts: rows of an older epoch mean nothing now
         # Tokenizer key -> table row (-1: unknown), filled under one tokenizer generation and one epoch;
         # the last entry stays -1 and is never a key's, so a key of -1 reads it (see `_rows_by_key`).
@@ -1622,7 +1655,9 @@ class EmissionScorer:
 
         ``keys`` (N,) int64 and ``generation``: the tokenizer's `TokenBatch.keys` and `.generation`; a
         token whose key (>= 0) was seen under this generation since the table last started afresh
-        takes the row found for it then, without its text being looked up again."""
+        takes the row found for it then, without its text being looked up again. ``texts`` and
+        ``kinds`` may be the tokenizer's lazy `TokenTexts` and `TokenKinds`: only the str of tokens
+        looked up are made."""
         n = len(texts)
         if len(kinds) != n:
             raise DataError(f"{n} tokens but {len(kinds)} kinds")
@@ -1649,8 +1684,7 @@ class EmissionScorer:
             return rows
         if unknown.size < rows.size:
             epoch = self._epoch
-            picked = unknown.tolist()
-            rows[unknown] = self._rows_by_type(_pick(texts, picked), _pick(kinds, picked))
+            rows[unknown] = self._rows_by_type(texts, kinds, unknown)
             if self._epoch != epoch:
                 # The table started afresh while placing the others: the rows taken by key are
                 # the old table's. Every token's row from the lookup.
@@ -1667,14 +1701,15 @@ class EmissionScorer:
         self._row_of_key[new_keys[recorded]] = rows[unknown[recorded]]
         return rows
 
-    def _rows_by_type(self, texts: Sequence[str], kinds: Sequence[str]) -> np.ndarray:
-        """`type_rows` by the tokens' texts and kinds (N)."""
-        n = len(texts)
+    def _rows_by_type(self, texts: Sequence[str], kinds: Sequence[str], picked: np.ndarray | None = None) -> np.ndarray:
+        """`type_rows` by the texts and kinds of the tokens ``picked`` (M,) (None: all of them)."""
         kernels = _feature_kernels()
         if (kernels is not None) != (self._index is not None):
             self._reset(capacity=self.table.shape[0], compiled=kernels is not None)   # switched: start afresh
         if kernels is not None:
-            return self._placed_rows(texts, kinds, kernels)
+            return self._placed_rows(*self._type_keys(texts, kinds, picked), kernels)
+        texts, kinds = _picked(texts, kinds, slice(None) if picked is None else picked)
+        n = len(texts)
         rows = np.fromiter(map(self.row_of_text.get, texts, repeat(self._BOUNDARY)), dtype=np.int64, count=n)
         # Kinds compared as objects: building the object array (none if ``kinds`` is one already) and
         # comparing (equal strings, mostly the very same objects) costs about half of a dict lookup per
@@ -1691,27 +1726,58 @@ class EmissionScorer:
         rows[other] = self._other_rows(_pick(texts, picked), _pick(kinds, picked), rows[other] != self._BOUNDARY)
         return rows
 
-    def _placed_rows(self, texts: list[str], kinds: list[str], kernels) -> np.ndarray:
-        """`type_rows` by the compiled type index: every token's (text, kind) found by one kernel over
-        the batch's UTF-8 bytes (a dict lookup per token cost three times as much), the new types
-        given the next rows in order of first appearance, then scored together."""
+    def _type_keys(self, texts: Sequence[str], kinds: Sequence[str], picked: np.ndarray | None):
+        """The keys of the compiled type index for the tokens ``picked`` (None: all): code points
+        (C,) uint32 with each token's text at [starts, ends) (M,), kind ids (M,) int64, and the
+        texts (M), made into str only when read. A tokenizer's lazy texts (`tokenize.TokenTexts`)
+        give their batch's code points as they are; other texts are encoded."""
+        code_points = getattr(texts, "code_points", None)
+        if code_points is not None and hasattr(kinds, "codes"):
+            chosen = np.arange(len(texts)) if picked is None else picked
+            starts = texts.batch_starts[chosen]
+            ends = starts + (texts.ends[chosen] - texts.starts[chosen])
+            return code_points, starts, ends, self._kind_ids_of_codes()[kinds.codes[chosen]], _TextsAt(texts, chosen)
+        texts, kinds = _picked(texts, kinds, slice(None) if picked is None else picked)
         n = len(texts)
+        # A numpy copy: writable, as the tokenizer's code points (one compiled signature).
+        code_points = np.frombuffer("".join(texts).encode("utf-32-le", "surrogatepass"), dtype=np.uint32).copy()
+        ends = np.cumsum(np.fromiter(map(len, texts), dtype=np.int64, count=n))
+        starts = ends - np.fromiter(map(len, texts), dtype=np.int64, count=n)
+        kind_ids = np.fromiter(map(self._kind_ids.get, kinds, repeat(-1)), dtype=np.int64, count=n)
+        for m in np.flatnonzero(kind_ids < 0).tolist():    # a kind seen for the first time
+            kind_ids[m] = self._kind_id(kinds[m])
+        return code_points, starts, ends, kind_ids, texts
+
+    def _kind_ids_of_codes(self) -> np.ndarray:
+        """(len(KINDS),) the kind id of each of the tokenizer's kind codes (indices into KINDS)."""
+        if self._kind_of_code is None:
+            from streamtag.tokenize import KINDS
+
+            self._kind_of_code = np.array([self._kind_id(kind) for kind in KINDS], dtype=np.int64)
+        return self._kind_of_code
+
+    def _placed_rows(self, code_points: np.ndarray, starts: np.ndarray, ends: np.ndarray, kind_ids: np.ndarray,
+                     texts: Sequence[str], kernels) -> np.ndarray:
+        """`type_rows` by the compiled type index: each token's (text, kind), its text code_points[start:end]
+        (M,) and its kind id (M,), found by one kernel (a dict lookup per token cost three times as
+        much), the new types given the next rows in order of first appearance, then scored together.
+        ``texts`` (M): the str of each token, read only for the few new types the kernels leave to
+        Python (non-ASCII ones)."""
+        n = starts.size
         rows = np.empty(n, dtype=np.int64)
         if n == 0:
             return rows
-        text_bytes, text_starts, text_ends = _joined_bytes(texts, kernels.split_at_nul)
-        kind_bytes, kind_starts, kind_ends = _joined_bytes(kinds, kernels.split_at_nul)
         firsts = np.empty(n, dtype=np.int64)
         index = self._index
         first = index.state[0]
         found = -1
         for fresh in (False, True):
             if fresh:
-                # Out of rows or key bytes: start afresh, with room for the whole batch at least.
-                self._reset(capacity=self.table.shape[0], compiled=True,
-                            key_bytes=text_bytes.size + kind_bytes.size, tokens=n)
+                # Out of rows or key room: start afresh, with room for the whole batch at least.
+                self._reset(capacity=self.table.shape[0], compiled=True, key_bytes=int((ends - starts).sum()) + n,
+                            tokens=n)
                 index, first = self._index, 1
-            found = kernels.place_types(text_bytes, text_starts, text_ends, kind_bytes, kind_starts, kind_ends,
+            found = kernels.place_types(code_points, starts, ends, self._kind_range, kind_ids, kind_ids + 1,
                                         index.slots, index.hash_bits, index.arena, index.state, index.limit,
                                         _MAX_CACHED_CHARS, rows, firsts)
             if found >= 0:
@@ -1719,16 +1785,11 @@ class EmissionScorer:
         if found < 0:
             raise AssertionError("the type index has room for a whole batch after a fresh start")
         if found:
-            picked = firsts[:found].tolist()
-            new_kinds = _pick(kinds, picked)
-            kind_ids = np.fromiter(map(self._kind_ids.get, new_kinds, repeat(-1)), dtype=np.int64, count=found)
-            for m in np.flatnonzero(kind_ids < 0).tolist():    # a kind seen for the first time
-                kind_ids[m] = self._kind_id(new_kinds[m])
-            self._grow(first + found)
             chosen = firsts[:found]
-            self.type_scorer.scores(_pick(texts, picked), kind_ids, self._kind_names,
+            self._grow(first + found)
+            self.type_scorer.scores(_TextsAt(texts, chosen), kind_ids[chosen], self._kind_names,
                                     out=self.table[first : first + found],
-                                    encoded=(text_bytes, text_starts[chosen], text_ends[chosen]))
+                                    encoded=(code_points, starts[chosen], ends[chosen]))
         self.n_rows = first + found
         return rows
 
@@ -1737,6 +1798,8 @@ class EmissionScorer:
         if kind_id is None:
             kind_id = self._kind_ids[kind] = len(self._kind_names)
             self._kind_names.append(kind)
+            # The kinds' "code points" in the compiled type index's keys: kind id k is [k, k + 1).
+            self._kind_range = np.arange(len(self._kind_names), dtype=np.uint32)
         return kind_id
 
     def _other_rows(self, texts: list[str], kinds: list[str], text_known: np.ndarray) -> np.ndarray:

@@ -30,6 +30,7 @@ import numba
 import numpy as np
 from llvmlite import ir
 from numba import types
+from numba.core import cgutils
 from numba.extending import intrinsic
 
 from streamtag.crf_kernels import _jit, _jit_cached, same_run
@@ -972,11 +973,44 @@ def scan_kernel(cp, kind_codes):
 
 _FNV_OFFSET = np.uint64(14695981039346656037)  # 64-bit FNV-1a (common practice for short keys)
 _FNV_PRIME = np.uint64(1099511628211)
-# Columns of a cached piece's row in `pieces` (M, 4) int64
-KEY_START, KEY_LENGTH, FIRST_ROW, N_ROWS = range(4)
-UNRESOLVED = -1  # N_ROWS of a piece added this batch and not tokenized yet; in a piece's n_rows: see lookup
+# Fields of a slot of the piece table (slots (S, 4) int64): the piece's hash, where its code points
+# start in the arena (EMPTY: a free slot), its length << 32 | (rows + ROWS_BIAS), its first token
+# row. Everything a lookup needs but the key itself sits in one 32-byte slot, so a hit costs the
+# slot's cache line and the key's (the table outgrows the caches: a miss each).
+SLOT_HASH, SLOT_START, SLOT_SIZE, SLOT_FIRST = range(4)
+SLOT_FIELDS = 4
+EMPTY = -1
+ROWS_BIAS = 2  # rows are stored + 2 so that UNRESOLVED and TEMPORARY stay non-negative
+UNRESOLVED = -1  # rows of a piece added this batch and not tokenized yet; in a piece's n_rows: see lookup
 TEMPORARY = -2  # a piece's n_rows: tokenized for this batch only (too long to cache, or no room)
 FULL = 1  # lookup's status: a new piece found no room; clear the cache and look the batch up again
+# Pieces ahead whose slot `lookup_kernel` asks the memory for, and (half as far) whose key.
+_SLOT_AHEAD = 16
+_KEY_AHEAD = 8
+
+
+@intrinsic
+def _prefetch(typingctx, array, index):
+    """Hint that array[index] will be read soon (LLVM's prefetch, for reading, kept in every cache
+    level). No effect on any result; an index past the array is never read."""
+    if not (isinstance(array, types.Array) and isinstance(index, types.Integer)):
+        return None
+    signature = types.void(array, index)
+
+    def codegen(context, builder, sig, args):
+        array_type = sig.args[0]
+        made = context.make_array(array_type)(context, builder, args[0])
+        item = context.cast(builder, args[1], sig.args[1], types.intp)
+        zero = context.get_constant(types.intp, 0)
+        pointer = cgutils.get_item_pointer(context, builder, array_type, made, [item] + [zero] * (array_type.ndim - 1))
+        byte_pointer = ir.IntType(8).as_pointer()
+        int32 = ir.IntType(32)
+        prefetch = cgutils.get_or_insert_function(
+            builder.module, ir.FunctionType(ir.VoidType(), [byte_pointer, int32, int32, int32]), "llvm.prefetch.p0")
+        builder.call(prefetch, [builder.bitcast(pointer, byte_pointer), int32(0), int32(3), int32(1)])
+        return context.get_dummy_value()
+
+    return signature, codegen
 
 
 @_jit
@@ -988,69 +1022,98 @@ def _hash_of(cp, a, b):
 
 
 @_jit
-def _find(cp, a, b, h, slots, hashes, pieces, arena):
-    """(slot, piece id) of cp[a:b] in the table; piece id -1 if absent (slot is then the free one)."""
+def _first_slot(h, mask):
+    # FNV's low bits are weak for short keys that differ in their last character only: fold the
+    # high half in before masking.
+    return np.int64((h ^ (h >> np.uint64(29))) & np.uint64(mask))
+
+
+@_jit
+def _find(cp, a, b, h, slots, arena):
+    """The slot of cp[a:b] in the table, and whether the piece is there (else the slot is the free
+    one where it would go)."""
     mask = slots.shape[0] - 1
-    i = np.int64(h & np.uint64(mask))
+    i = _first_slot(h, mask)
     length = b - a
+    signed_hash = np.int64(h)
     while True:
-        found = slots[i]
-        if found < 0:
-            return i, -1
-        if hashes[found] == h and pieces[found, KEY_LENGTH] == length and same_run(
-                arena, pieces[found, KEY_START], cp, a, length):
-            return i, found
+        start = slots[i, SLOT_START]
+        if start == EMPTY:
+            return i, False
+        if (slots[i, SLOT_HASH] == signed_hash and (slots[i, SLOT_SIZE] >> 32) == length
+                and same_run(arena, start, cp, a, length)):
+            return i, True
         i = (i + 1) & mask
 
 
 @_jit_cached
-def lookup_kernel(cp, line_lengths, slots, hashes, pieces, arena, table_counts, cache_size, max_cached, may_clear):
+def lookup_kernel(cp, line_lengths, slots, arena, table_counts, cache_size, max_cached, may_clear):
     """Look up every piece of a batch string and add the new ones to the table.
 
     cp (C,) uint32: the batch's B lines joined by ' '; line_lengths (B,) int64, B >= 1. The table:
-    slots (S,) int64 (S a power of two, -1 free), hashes (M,) uint64 and pieces (M, 4) int64 per
-    piece id, arena (A,) uint32 of the pieces' code points, table_counts [pieces, arena used]; the
-    caller makes room for every piece of the batch (M >= min(cache_size, pieces + C + 1), A >=
-    used + C, S >= 2 M).
+    slots (S, SLOT_FIELDS) int64 (S a power of two; see SLOT_*), arena (A,) uint32 of the pieces'
+    code points, table_counts [pieces, arena used]; the caller makes room for every piece of the
+    batch (S >= 2 min(cache_size, pieces + C + 1), A >= used + C).
 
-    Returns (status, first, n_rows, offsets, per_line, new_starts, new_lengths, new_ids,
+    Returns (status, first, n_rows, offsets, per_line, new_starts, new_lengths, new_slots,
     temp_starts, temp_lengths, misses): per piece of ``cp`` split at ' ' (P,) its first token row and
-    number of rows; or n_rows UNRESOLVED and first its piece id (a piece new to the table: its rows
-    are the caller's to find), or n_rows TEMPORARY and first its index among the temporary pieces;
+    number of rows; or n_rows UNRESOLVED and first its slot (a piece new to the table: its rows are
+    the caller's to find), or n_rows TEMPORARY and first its index among the temporary pieces;
     each piece's offset in its line (P,) and pieces per line (B,). The new pieces put in the table
-    (start in cp, length, id) and the temporary ones (start, length), in batch order; misses counts
+    (start in cp, length, slot) and the temporary ones (start, length), in batch order; misses counts
     the pieces not found. A new piece that finds the table full (cache_size pieces) is temporary,
     and if ``may_clear`` the status is FULL: the caller is to clear the table and look up again.
+
+    The pieces are split and hashed first; then each is looked up while the slots of the pieces
+    _SLOT_AHEAD further on, and the keys of those _KEY_AHEAD on, are asked of memory (a lookup is
+    otherwise two waits for memory in a row).
     """
     size = cp.shape[0]
     n_pieces = 1
     for i in range(size):
         if cp[i] == 32:
             n_pieces += 1
+    bounds = np.empty(n_pieces + 1, dtype=np.int64)  # piece p is cp[bounds[p]:bounds[p + 1] - 1]
+    hashes = np.empty(n_pieces, dtype=np.uint64)
+    mask = slots.shape[0] - 1
+    p = 0
+    a = 0
+    for i in range(size + 1):
+        if i < size and cp[i] != 32:
+            continue
+        bounds[p] = a
+        hashes[p] = _hash_of(cp, a, i)
+        p += 1
+        a = i + 1
+    bounds[n_pieces] = size + 1
     first = np.empty(n_pieces, dtype=np.int64)
     n_rows = np.empty(n_pieces, dtype=np.int64)
     offsets = np.empty(n_pieces, dtype=np.int64)
     per_line = np.zeros(line_lengths.shape[0], dtype=np.int64)
     new_starts = np.empty(n_pieces, dtype=np.int64)
     new_lengths = np.empty(n_pieces, dtype=np.int64)
-    new_ids = np.empty(n_pieces, dtype=np.int64)
+    new_slots = np.empty(n_pieces, dtype=np.int64)
     temp_starts = np.empty(n_pieces, dtype=np.int64)
     temp_lengths = np.empty(n_pieces, dtype=np.int64)
     n_new = 0
     n_temp = 0
     misses = 0
     n_cached = table_counts[0]
-    cached_before = n_cached
-    arena_used = table_counts[1]
+    arena_before = table_counts[1]
+    arena_used = arena_before
     line = 0
     line_start = 0
     line_end = line_lengths[0]
-    a = 0
-    p = 0
     status = 0
-    for i in range(size + 1):
-        if i < size and cp[i] != 32:
-            continue
+    for p in range(n_pieces):
+        if p + _SLOT_AHEAD < n_pieces:
+            _prefetch(slots, _first_slot(hashes[p + _SLOT_AHEAD], mask))
+        if p + _KEY_AHEAD < n_pieces:
+            start = slots[_first_slot(hashes[p + _KEY_AHEAD], mask), SLOT_START]
+            if start >= 0:
+                _prefetch(arena, start)
+        a = bounds[p]
+        i = bounds[p + 1] - 1
         while a > line_end:  # the piece starts a later line (every line has at least one piece)
             line += 1
             line_start = line_end + 1
@@ -1061,86 +1124,89 @@ def lookup_kernel(cp, line_lengths, slots, hashes, pieces, arena, table_counts, 
         if length == 0:
             first[p] = 0
             n_rows[p] = 0
-        else:
-            h = _hash_of(cp, a, i)
-            slot, found = _find(cp, a, i, h, slots, hashes, pieces, arena)
-            if found >= 0:
-                if found >= cached_before:
-                    misses += 1
-                if pieces[found, N_ROWS] >= 0:
-                    first[p] = pieces[found, FIRST_ROW]
-                    n_rows[p] = pieces[found, N_ROWS]
-                else:
-                    first[p] = found
-                    n_rows[p] = UNRESOLVED
-            else:
+            continue
+        h = hashes[p]
+        slot, found = _find(cp, a, i, h, slots, arena)
+        if found:
+            if slots[slot, SLOT_START] >= arena_before:  # added by this batch
                 misses += 1
-                if length <= max_cached and n_cached >= cache_size and may_clear:
-                    status = FULL  # the caller starts over; the lookups go on only to count misses
-                if length <= max_cached and n_cached < cache_size and status != FULL:
-                    slots[slot] = n_cached
-                    hashes[n_cached] = h
-                    pieces[n_cached, KEY_START] = arena_used
-                    pieces[n_cached, KEY_LENGTH] = length
-                    pieces[n_cached, FIRST_ROW] = 0
-                    pieces[n_cached, N_ROWS] = UNRESOLVED
-                    for j in range(length):
-                        arena[arena_used + j] = cp[a + j]
-                    arena_used += length
-                    new_starts[n_new] = a
-                    new_lengths[n_new] = length
-                    new_ids[n_new] = n_cached
-                    n_new += 1
-                    first[p] = n_cached
-                    n_rows[p] = UNRESOLVED
-                    n_cached += 1
-                else:
-                    temp_starts[n_temp] = a
-                    temp_lengths[n_temp] = length
-                    first[p] = n_temp
-                    n_rows[p] = TEMPORARY
-                    n_temp += 1
-        p += 1
-        a = i + 1
+            rows = (slots[slot, SLOT_SIZE] & 0xFFFFFFFF) - ROWS_BIAS
+            if rows >= 0:
+                first[p] = slots[slot, SLOT_FIRST]
+                n_rows[p] = rows
+            else:
+                first[p] = slot
+                n_rows[p] = UNRESOLVED
+            continue
+        misses += 1
+        if length <= max_cached and n_cached >= cache_size and may_clear:
+            status = FULL  # the caller starts over; the lookups go on only to count misses
+        if length <= max_cached and n_cached < cache_size and status != FULL:
+            slots[slot, SLOT_HASH] = np.int64(h)
+            slots[slot, SLOT_START] = arena_used
+            slots[slot, SLOT_SIZE] = (length << 32) | (UNRESOLVED + ROWS_BIAS)
+            slots[slot, SLOT_FIRST] = 0
+            for j in range(length):
+                arena[arena_used + j] = cp[a + j]
+            arena_used += length
+            new_starts[n_new] = a
+            new_lengths[n_new] = length
+            new_slots[n_new] = slot
+            n_new += 1
+            first[p] = slot
+            n_rows[p] = UNRESOLVED
+            n_cached += 1
+        else:
+            temp_starts[n_temp] = a
+            temp_lengths[n_temp] = length
+            first[p] = n_temp
+            n_rows[p] = TEMPORARY
+            n_temp += 1
     table_counts[0] = n_cached
     table_counts[1] = arena_used
     return (status, first, n_rows, offsets, per_line, new_starts[:n_new].copy(), new_lengths[:n_new].copy(),
-            new_ids[:n_new].copy(), temp_starts[:n_temp].copy(), temp_lengths[:n_temp].copy(), misses)
+            new_slots[:n_new].copy(), temp_starts[:n_temp].copy(), temp_lengths[:n_temp].copy(), misses)
 
 
 @_jit_cached
-def rehash_kernel(slots, hashes, n_cached):
-    """Put pieces 0..n_cached-1 into the free table slots (S,) (all -1) by their hashes (M,)."""
+def resolve_kernel(slots, new_slots, first, n_rows):
+    """Record the rows of the pieces added in slots new_slots (K,): first (K,) and n_rows (K,) each."""
+    for k in range(new_slots.shape[0]):
+        slot = new_slots[k]
+        slots[slot, SLOT_FIRST] = first[k]
+        slots[slot, SLOT_SIZE] = (slots[slot, SLOT_SIZE] >> 32 << 32) | (n_rows[k] + ROWS_BIAS)
+
+
+@_jit_cached
+def rehash_kernel(old_slots, slots):
+    """Put the pieces of ``old_slots`` into ``slots`` (S, SLOT_FIELDS), all free, by their hashes."""
     mask = slots.shape[0] - 1
-    for piece in range(n_cached):
-        i = np.int64(hashes[piece] & np.uint64(mask))
-        while slots[i] >= 0:
+    for k in range(old_slots.shape[0]):
+        if old_slots[k, SLOT_START] == EMPTY:
+            continue
+        i = _first_slot(np.uint64(old_slots[k, SLOT_HASH]), mask)
+        while slots[i, SLOT_START] != EMPTY:
             i = (i + 1) & mask
-        slots[i] = piece
+        for field in range(SLOT_FIELDS):
+            slots[i, field] = old_slots[k, field]
 
 
 @_jit_cached
-def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, first_row, kind_codes):
+def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, row_kinds, first_row, kind_codes):
     """Tokens of the pieces cp[start:start + length] (K,), as rows first_row, first_row + 1, ...
 
-    Writes each token's start and end in its piece to row_starts and row_ends (the caller has room
-    for one row per character). Returns first (K,) and n_rows (K,) per piece (n_rows -1: unsure,
-    no rows; see `scan`), and per token (T,) its start and end in cp and its kind (index into KINDS).
+    Writes each token's start and end in its piece and its kind (index into KINDS) to row_starts,
+    row_ends and row_kinds (the caller has room for one row per character). Returns first (K,) and
+    n_rows (K,) per piece (n_rows -1: unsure, no rows; see `scan`) and the number of rows written.
     """
     n_given = piece_starts.shape[0]
     first = np.empty(n_given, dtype=np.int64)
     n_rows = np.empty(n_given, dtype=np.int64)
-    total = 0
-    for j in range(n_given):
-        total += piece_lengths[j]
-    starts = np.empty(total, dtype=np.int64)
-    ends = np.empty(total, dtype=np.int64)
-    kinds = np.empty(total, dtype=np.int8)
     # One piece at a time in a zero-padded buffer, as scan_kernel reads it (a 0 before the piece and
     # at least _PAD after it).
     buffer = np.zeros(1 + MAX_PIECE + _PAD, dtype=np.uint8)
     s = np.intp(buffer.ctypes.data)  # read by _at; buffer stays alive to the end
-    n = 0
+    n = first_row
     for j in range(n_given):
         a = piece_starts[j]
         length = piece_lengths[j]
@@ -1163,51 +1229,53 @@ def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, fi
                     sure = False
                     n = t0
                     break
-                starts[n] = a + p - 1
-                ends[n] = a + e - 1
-                kinds[n] = kind_codes[rule]
+                row_starts[n] = p - 1
+                row_ends[n] = e - 1
+                row_kinds[n] = kind_codes[rule]
                 n += 1
                 p = e
         if sure:
-            first[j] = first_row + t0
+            first[j] = t0
             n_rows[j] = n - t0
-            for t in range(t0, n):
-                row_starts[first_row + t] = starts[t] - a
-                row_ends[first_row + t] = ends[t] - a
         else:
             first[j] = 0
             n_rows[j] = -1
-    return first, n_rows, starts[:n].copy(), ends[:n].copy(), kinds[:n].copy()
+    return first, n_rows, n - first_row
 
 
 @_jit_cached
-def gather_kernel(first, n_rows, offsets, per_line, pieces, temp_first, temp_rows, row_starts, row_ends):
+def gather_kernel(first, n_rows, offsets, per_line, line_starts, slots, temp_first, temp_rows, row_starts,
+                  row_ends, row_kinds):
     """Every token of a batch from its pieces (P,) (see lookup_kernel; the UNRESOLVED ones now
-    resolved in ``pieces``, the TEMPORARY ones by temp_first / temp_rows): rows (N,), starts and
-    ends (N,) in the token's line, tokens per line (B,)."""
+    resolved in ``slots``, the TEMPORARY ones by temp_first / temp_rows): rows (N,), starts and ends
+    (N,) in the token's line, starts (N,) in the batch string (lines joined by ' ', line b from
+    line_starts[b]), kinds (N,) int8, tokens per line (B,)."""
     n_pieces = first.shape[0]
     total = 0
     for p in range(n_pieces):
         r = n_rows[p]
         if r == UNRESOLVED:
-            r = pieces[first[p], N_ROWS]
+            r = (slots[first[p], SLOT_SIZE] & 0xFFFFFFFF) - ROWS_BIAS
         elif r == TEMPORARY:
             r = temp_rows[first[p]]
         total += r
     rows = np.empty(total, dtype=np.int64)
     starts = np.empty(total, dtype=np.int64)
     ends = np.empty(total, dtype=np.int64)
+    batch_starts = np.empty(total, dtype=np.int64)
+    kinds = np.empty(total, dtype=np.int8)
     counts = np.zeros(per_line.shape[0], dtype=np.int64)
     t = 0
     p = 0
     for line in range(per_line.shape[0]):
         line_first = t
+        line_start = line_starts[line]
         for _ in range(per_line[line]):
             f = first[p]
             r = n_rows[p]
             if r == UNRESOLVED:
-                r = pieces[f, N_ROWS]
-                f = pieces[f, FIRST_ROW]
+                r = (slots[f, SLOT_SIZE] & 0xFFFFFFFF) - ROWS_BIAS
+                f = slots[f, SLOT_FIRST]
             elif r == TEMPORARY:
                 r = temp_rows[f]
                 f = temp_first[f]
@@ -1216,10 +1284,12 @@ def gather_kernel(first, n_rows, offsets, per_line, pieces, temp_first, temp_row
                 rows[t] = q
                 starts[t] = row_starts[q] + shift
                 ends[t] = row_ends[q] + shift
+                batch_starts[t] = starts[t] + line_start
+                kinds[t] = row_kinds[q]
                 t += 1
             p += 1
         counts[line] = t - line_first
-    return rows, starts, ends, counts
+    return rows, starts, ends, batch_starts, kinds, counts
 
 
 _LOAD_LOCK = threading.Lock()
@@ -1255,6 +1325,7 @@ class BatchKernels(NamedTuple):
     """The compiled kernels of `tokenize.BatchTokenizer`'s piece table."""
 
     lookup: object  # lookup_kernel
+    resolve: object  # resolve_kernel
     rehash: object  # rehash_kernel
     scan_pieces: object  # scan_pieces_kernel
     gather: object  # gather_kernel
@@ -1262,44 +1333,48 @@ class BatchKernels(NamedTuple):
 
 
 _batch_loaded = None
+_BATCH_KERNELS = ("lookup_kernel", "resolve_kernel", "rehash_kernel", "scan_pieces_kernel", "gather_kernel")
 
 
 def batch_kernels() -> BatchKernels:
     """The batch kernels, compiled or loaded from the cache (a loader for `crf.compiled`; a corrupt
     or read-only cache makes them compile afresh, silently)."""
-    global _batch_loaded, lookup_kernel, rehash_kernel, scan_pieces_kernel, gather_kernel
+    global _batch_loaded
     with _LOAD_LOCK, warnings.catch_warnings():
         if _batch_loaded is None:
             warnings.simplefilter("ignore", numba.NumbaWarning)
             try:
                 _try_batch_kernels()
             except Exception:  # noqa: BLE001 - a cache fault; a real compile error recurs below and is raised
-                lookup_kernel = _jit(lookup_kernel.py_func)
-                rehash_kernel = _jit(rehash_kernel.py_func)
-                scan_pieces_kernel = _jit(scan_pieces_kernel.py_func)
-                gather_kernel = _jit(gather_kernel.py_func)
+                globals().update((name, _jit(globals()[name].py_func)) for name in _BATCH_KERNELS)
                 _try_batch_kernels()
-            _batch_loaded = BatchKernels(lookup_kernel, rehash_kernel, scan_pieces_kernel, gather_kernel, _KIND_CODES)
+            _batch_loaded = BatchKernels(*(globals()[name] for name in _BATCH_KERNELS), _KIND_CODES)
     return _batch_loaded
+
+
+def new_slots(size: int) -> np.ndarray:
+    """An empty piece table of ``size`` slots (a power of two): (size, SLOT_FIELDS) int64."""
+    slots = np.zeros((size, SLOT_FIELDS), dtype=np.int64)
+    slots[:, SLOT_START] = EMPTY
+    return slots
 
 
 def _try_batch_kernels() -> None:
     """Run each batch kernel once on a tiny table with the argument types the tokenizer uses."""
     cp = np.frombuffer("a 1".encode("utf-32-le"), dtype=np.uint32).copy()
-    slots = np.full(8, -1, dtype=np.int64)
-    hashes = np.zeros(4, dtype=np.uint64)
-    pieces = np.zeros((4, 4), dtype=np.int64)
+    slots = new_slots(8)
     arena = np.zeros(8, dtype=np.uint32)
     counts = np.zeros(2, dtype=np.int64)
-    found = lookup_kernel(cp, np.array([3], dtype=np.int64), slots, hashes, pieces, arena, counts, 4, 256, False)
-    rehash_kernel(np.full(8, -1, dtype=np.int64), hashes, 2)
+    found = lookup_kernel(cp, np.array([3], dtype=np.int64), slots, arena, counts, 4, 256, False)
+    rehash_kernel(slots, new_slots(16))
     row_starts = np.zeros(8, dtype=np.int32)
     row_ends = np.zeros(8, dtype=np.int32)
-    first, n_rows, _, _, _ = scan_pieces_kernel(cp, found[5], found[6], row_starts, row_ends, 0, _KIND_CODES)
-    pieces[found[7], FIRST_ROW] = first
-    pieces[found[7], N_ROWS] = n_rows
+    row_kinds = np.zeros(8, dtype=np.int8)
+    first, n_rows, _ = scan_pieces_kernel(cp, found[5], found[6], row_starts, row_ends, row_kinds, 0, _KIND_CODES)
+    resolve_kernel(slots, found[7], first, n_rows)
     empty = np.zeros(0, dtype=np.int64)
-    gather_kernel(found[1], found[2], found[3], found[4], pieces, empty, empty, row_starts, row_ends)
+    gather_kernel(found[1], found[2], found[3], found[4], np.zeros(1, dtype=np.int64), slots, empty, empty,
+                  row_starts, row_ends, row_kinds)
 
 
 def scan(code_points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:

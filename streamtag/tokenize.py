@@ -29,6 +29,7 @@ from __future__ import annotations
 import re
 from functools import lru_cache
 from itertools import chain, compress, count, islice, repeat
+from collections.abc import Sequence
 from operator import attrgetter
 from typing import NamedTuple
 
@@ -36,7 +37,7 @@ import numpy as np
 
 from streamtag.errors import DataError
 
-__all__ = ["KINDS", "BatchTokenizer", "TokenBatch", "TokenList", "tokenize", "token_kind"]
+__all__ = ["KINDS", "BatchTokenizer", "TokenBatch", "TokenKinds", "TokenList", "TokenTexts", "tokenize", "token_kind"]
 
 
 class TokenList(NamedTuple):
@@ -390,6 +391,91 @@ class TokenBatch(NamedTuple):
                 for a, b in zip(bounds[:-1], bounds[1:])]
 
 
+class TokenTexts(Sequence):
+    """The texts of a batch's tokens (N), each cut from the batch's lines joined by ' ' when asked.
+
+    Most consumers need only a few texts (the emission scorer those of types it has not met, the
+    tagger those of doubtful lines), and a str per token costs about as much as finding the token.
+    Indexing, slices, iteration and ``pick`` give str; it compares equal to the list of its texts."""
+
+    __slots__ = ("joined", "batch_starts", "starts", "ends", "code_points")
+
+    def __init__(self, joined: str, batch_starts: np.ndarray, starts: np.ndarray, ends: np.ndarray,
+                 code_points: np.ndarray | None = None):
+        self.joined = joined  # the batch's lines joined by ' '
+        self.batch_starts = batch_starts  # (N,) each token's start in joined
+        self.starts = starts  # (N,) start and end in its line: the length is ends - starts
+        self.ends = ends
+        self.code_points = code_points  # (C,) uint32 joined's code points, if at hand (the scorer reads them)
+
+    def __len__(self) -> int:
+        return len(self.batch_starts)
+
+    def __getitem__(self, index):
+        if isinstance(index, slice):
+            return self.pick(index)
+        start = int(self.batch_starts[index])
+        return self.joined[start : start + int(self.ends[index] - self.starts[index])]
+
+    def pick(self, indices) -> list[str]:
+        """The texts of tokens ``indices`` (an int array, a list or a slice), in that order."""
+        if not isinstance(indices, slice):
+            indices = np.asarray(indices, dtype=np.int64)
+        starts = self.batch_starts[indices]
+        ends = starts + (self.ends[indices] - self.starts[indices])
+        return list(map(self.joined.__getitem__, map(slice, starts.tolist(), ends.tolist())))
+
+    def __iter__(self):
+        return iter(self.pick(slice(None)))
+
+    def __eq__(self, other):
+        if isinstance(other, (list, tuple, TokenTexts)):
+            return list(self) == list(other)
+        return NotImplemented
+
+    __hash__ = None  # mutable-sequence-like: no hash, as a list
+
+    def __repr__(self) -> str:
+        return f"TokenTexts({list(self)!r})"
+
+
+class TokenKinds(Sequence):
+    """The kinds of a batch's tokens (N), from their codes (N,) int8 (indices into KINDS); the str when
+    asked. Compares equal to the list of its kinds."""
+
+    __slots__ = ("codes",)
+
+    def __init__(self, codes: np.ndarray):
+        self.codes = codes
+
+    def __len__(self) -> int:
+        return len(self.codes)
+
+    def __getitem__(self, index):
+        if isinstance(index, slice):
+            return self.pick(index)
+        return KINDS[self.codes[index]]
+
+    def pick(self, indices) -> list[str]:
+        """The kinds of tokens ``indices`` (an int array, a list or a slice), in that order."""
+        if not isinstance(indices, slice):
+            indices = np.asarray(indices, dtype=np.int64)
+        return _KIND_NAMES.take(self.codes[indices]).tolist()
+
+    def __iter__(self):
+        return iter(self.pick(slice(None)))
+
+    def __eq__(self, other):
+        if isinstance(other, (list, tuple, TokenKinds)):
+            return list(self) == list(other)
+        return NotImplemented
+
+    __hash__ = None
+
+    def __repr__(self) -> str:
+        return f"TokenKinds({list(self)!r})"
+
+
 _MAX_CACHED_PIECE = 256  # longer pieces are tokenized but not cached: a log of long unique runs
 # (base64 blobs, minified JSON) must not fill memory, and such pieces rarely repeat anyway.
 _ROWS_PER_PIECE = 8  # token rows kept per cached piece on average at most (service logs: about 2)
@@ -449,6 +535,7 @@ class BatchTokenizer:
             self._kinds = np.empty(4096, dtype=object)  # (rows,) kind
             self._starts = np.zeros(4096, dtype=_ENTRY)  # (rows,) start in the piece
             self._ends = np.zeros(4096, dtype=_ENTRY)  # (rows,) end in the piece
+            self._row_kinds = np.zeros(4096, dtype=np.int8)  # (rows,) kind code (piece table only)
         self._n_rows = 0  # rows in use: the cached pieces', then the current batch's others
 
     @property
@@ -456,8 +543,12 @@ class BatchTokenizer:
         """Distinct pieces held in the cache (at most ``cache_size``)."""
         return self._table.n_pieces if self._table else len(self._entries)
 
-    def tokenize_lines(self, lines: list[str]) -> TokenBatch:
-        """Tokens of every line of ``lines``; per line the same as ``tokenize(line)``."""
+    def tokenize_lines(self, lines: list[str], lazy: bool = False) -> TokenBatch:
+        """Tokens of every line of ``lines``; per line the same as ``tokenize(line)``.
+
+        ``lazy``: the batch's texts and kinds may be a `TokenTexts` and a `TokenKinds` (with the
+        compiled piece table), which make a token's str only when asked for it: for consumers that
+        read a few of them (the emission scorer takes them as they are)."""
         try:
             joined = " ".join(lines)
         except TypeError:
@@ -470,7 +561,7 @@ class BatchTokenizer:
         if self._table:
             kernels = _batch_kernels()
             if kernels is not None:
-                return self._tokenize_with_table(lines, joined, kernels)
+                return self._tokenize_with_table(lines, joined, kernels, lazy)
             self._table = False  # the kernels were switched off since: the dict from now on
             self._clear()
         # Joining with ' ' and splitting at ' ' gives each line's pieces in turn, line.count(' ') + 1
@@ -493,11 +584,11 @@ class BatchTokenizer:
             self._n_rows = kept_rows
         return batch
 
-    def _tokenize_with_table(self, lines: list[str], joined: str, kernels) -> TokenBatch:
+    def _tokenize_with_table(self, lines: list[str], joined: str, kernels, lazy: bool) -> TokenBatch:
         """`tokenize_lines` with the compiled piece table: one kernel splits the batch at ' ', looks
         every piece up and adds the new ones to the table; the new pieces are scanned (or matched
-        by the pattern where the scanner is unsure) into new rows; one kernel gathers the tokens.
-        Python touches only the new tokens' texts and the gathered rows' texts and kinds."""
+        by the pattern where the scanner is unsure) into new rows (offsets and kind, no str); one
+        kernel gathers the tokens. Python makes the str of a token only when it is asked for."""
         table = self._table
         # A numpy copy: writable and aligned, the one signature the kernels are compiled for.
         code_points = np.frombuffer(joined.encode("utf-32-le", "surrogatepass"), dtype=np.uint32).copy()
@@ -506,50 +597,48 @@ class BatchTokenizer:
             self._clear()
         n_pieces = joined.count(" ") + 1
         misses = None
+        scan_kernels = _scan_kernels()
         for may_clear in (table.n_pieces > 0, False):
             table.make_room(n_pieces, len(code_points), kernels)
-            found = kernels.lookup(code_points, line_lengths, table.slots, table.hashes, table.pieces, table.arena,
-                                   table.counts, self.cache_size, _MAX_CACHED_PIECE, may_clear)
+            found = kernels.lookup(code_points, line_lengths, table.slots, table.arena, table.counts, self.cache_size,
+                                   _MAX_CACHED_PIECE, may_clear)
             misses = found[-1] if misses is None else misses  # the pieces the cache did not hold
-            if found[0] != _scan_kernels().FULL:
+            if found[0] != scan_kernels.FULL:
                 break
             # Clearing the whole cache when it is full keeps memory flat at the cost of one batch of
             # misses per refill; the pieces that matter come back at once. The lookup starts over.
             self._clear()
-        _, first, n_rows, offsets, per_line, new_starts, new_lengths, new_ids, temp_starts, temp_lengths, _ = found
-        if len(new_ids):
+        _, first, n_rows, offsets, per_line, new_starts, new_lengths, new_slots, temp_starts, temp_lengths, _ = found
+        if len(new_slots):
             new_first, new_rows = self._add_rows(joined, code_points, new_starts, new_lengths, kernels)
-            table.pieces[new_ids, _scan_kernels().FIRST_ROW] = new_first
-            table.pieces[new_ids, _scan_kernels().N_ROWS] = new_rows
+            kernels.resolve(table.slots, new_slots, new_first, new_rows)
         kept_rows = self._n_rows
         temp_first = temp_rows = _NO_ROWS
         if len(temp_starts):  # pieces too long to cache, or with no room: rows for this batch only
             temp_first, temp_rows = self._add_rows(joined, code_points, temp_starts, temp_lengths, kernels)
-        rows, starts, ends, counts = kernels.gather(first, n_rows, offsets, per_line, table.pieces, temp_first,
-                                                    temp_rows, self._starts, self._ends)
-        batch = TokenBatch(self._texts.take(rows).tolist(), self._kinds.take(rows).tolist(), starts, ends, counts,
-                           _keys(rows, kept_rows), self.generation)
+        line_starts = np.cumsum(line_lengths + 1) - (line_lengths + 1)  # (B,) in joined
+        rows, starts, ends, batch_starts, kind_codes, counts = kernels.gather(
+            first, n_rows, offsets, per_line, line_starts, table.slots, temp_first, temp_rows, self._starts,
+            self._ends, self._row_kinds)
+        texts = TokenTexts(joined, batch_starts, starts, ends, code_points)
+        kinds = TokenKinds(kind_codes)
+        if not lazy:
+            texts, kinds = texts.pick(slice(None)), kinds.pick(slice(None))
         self.misses += misses
         self.hits += len(first) - misses
-        if self._n_rows > kept_rows:  # let go of this batch's pieces that are not cached
-            self._texts[kept_rows : self._n_rows] = None
-            self._kinds[kept_rows : self._n_rows] = None
-            self._n_rows = kept_rows
-        return batch
+        self._n_rows = kept_rows  # the rows of pieces not cached are the next batch's to reuse
+        return TokenBatch(texts, kinds, starts, ends, counts, _keys(rows, kept_rows), self.generation)
 
     def _add_rows(self, joined: str, code_points: np.ndarray, piece_starts: np.ndarray, piece_lengths: np.ndarray,
                   kernels) -> tuple[np.ndarray, np.ndarray]:
-        """Tokenize the pieces joined[start:start + length] (K,) into new rows; return each piece's
-        first row and number of rows (K,). The scanner takes the pieces it is sure of, the pattern
-        the others (all of them when the scanner is off)."""
+        """Tokenize the pieces joined[start:start + length] (K,) into new rows (offsets and kind
+        code); return each piece's first row and number of rows (K,). The scanner takes the pieces
+        it is sure of, the pattern the others (all of them when the scanner is off)."""
         self._reserve(int(piece_lengths.sum()))  # a piece has at most one token per character
         if _scanner() is not None:
-            first, n_rows, token_starts, token_ends, token_kinds = kernels.scan_pieces(
-                code_points, piece_starts, piece_lengths, self._starts, self._ends, self._n_rows, kernels.kind_codes)
-            added = slice(self._n_rows, self._n_rows + len(token_kinds))
-            self._texts[added] = list(map(joined.__getitem__, map(slice, token_starts.tolist(), token_ends.tolist())))
-            self._kinds[added] = _KIND_NAMES.take(token_kinds)
-            self._n_rows = added.stop
+            first, n_rows, added = kernels.scan_pieces(code_points, piece_starts, piece_lengths, self._starts,
+                                                       self._ends, self._row_kinds, self._n_rows, kernels.kind_codes)
+            self._n_rows += added
             unsure = n_rows < 0
         else:
             first = np.zeros(len(piece_starts), dtype=np.int64)
@@ -562,10 +651,9 @@ class BatchTokenizer:
             pieces = list(map(joined.__getitem__, map(slice, starts.tolist(), (starts + lengths).tolist())))
             texts, kinds, token_starts, token_ends, counts = _match_pieces(pieces, lengths)
             added = slice(self._n_rows, self._n_rows + len(texts))
-            self._texts[added] = texts
-            self._kinds[added] = kinds
             self._starts[added] = token_starts
             self._ends[added] = token_ends
+            self._row_kinds[added] = np.fromiter(map(_KIND_CODE.__getitem__, kinds), dtype=np.int8, count=len(kinds))
             first[unsure_at] = added.start + np.cumsum(counts) - counts
             n_rows[unsure_at] = counts
             self._n_rows = added.stop
@@ -621,12 +709,14 @@ class BatchTokenizer:
     def _reserve(self, more_rows: int) -> None:
         """Grow the row tables (doubling) to hold ``more_rows`` beyond those in use."""
         needed = self._n_rows + more_rows
-        if needed > len(self._texts):
-            size = max(needed, 2 * len(self._texts))
-            self._texts = _grown(self._texts, size)
-            self._kinds = _grown(self._kinds, size)
+        if needed > len(self._starts):
+            size = max(needed, 2 * len(self._starts))
             self._starts = _grown(self._starts, size)
             self._ends = _grown(self._ends, size)
+        # The piece table's rows hold a kind code and no str; the dict cache's rows hold both str.
+        for name in ("_row_kinds",) if self._table else ("_texts", "_kinds"):
+            if needed > len(getattr(self, name)):
+                setattr(self, name, _grown(getattr(self, name), len(self._starts)))
 
     def _gather(self, lines: list[str], entries: np.ndarray, kept_rows: int) -> TokenBatch:
         """The batch from the pieces' entries (P, 3): their token rows, offsets shifted to the line;
@@ -747,9 +837,7 @@ class _PieceTable:
 
     def __init__(self, cache_size: int):
         self.cache_size = cache_size
-        self.slots = np.full(8, -1, dtype=np.int64)  # (S,) piece id or -1, S a power of two
-        self.hashes = np.zeros(0, dtype=np.uint64)  # (M,) per piece id
-        self.pieces = np.zeros((0, 4), dtype=np.int64)  # (M, 4) key start, key length, first row, rows
+        self.slots = _scan_kernels().new_slots(8)  # (S, SLOT_FIELDS) int64, S a power of two
         self.arena = np.zeros(0, dtype=np.uint32)  # (A,) the pieces' code points
         self.counts = np.zeros(2, dtype=np.int64)  # pieces, arena used
 
@@ -759,19 +847,13 @@ class _PieceTable:
 
     def clear(self) -> None:
         """Forget every piece (the arrays are kept, as the row tables are)."""
-        self.slots.fill(-1)
+        self.slots[:, _scan_kernels().SLOT_START] = _scan_kernels().EMPTY
         self.counts[:] = 0
 
     def make_room(self, n_pieces: int, n_chars: int, kernels) -> None:
         """Grow the arrays to take ``n_pieces`` new pieces of ``n_chars`` characters in all."""
         cached, used = self.counts.tolist()
         most = min(self.cache_size, cached + n_pieces)
-        if most > len(self.hashes):
-            size = min(self.cache_size, max(most, 2 * len(self.hashes)))
-            self.hashes = _grown(self.hashes, size)
-            bigger = np.zeros((size, 4), dtype=np.int64)
-            bigger[: len(self.pieces)] = self.pieces
-            self.pieces = bigger
         chars = used + min(n_chars, (self.cache_size - cached) * _MAX_CACHED_PIECE)
         if chars > len(self.arena):
             self.arena = _grown(self.arena, max(chars, 2 * len(self.arena)))
@@ -779,8 +861,9 @@ class _PieceTable:
         while slots < 2 * most:  # at most half full: short probes
             slots *= 2
         if slots > len(self.slots):
-            self.slots = np.full(slots, -1, dtype=np.int64)
-            kernels.rehash(self.slots, self.hashes, cached)
+            grown = _scan_kernels().new_slots(slots)
+            kernels.rehash(self.slots, grown)
+            self.slots = grown
 
 
 _NO_ROWS = np.zeros(0, dtype=np.int64)

@@ -802,12 +802,19 @@ def _assert_same_scores(keyed, keyed_rows, plain, plain_rows, lengths):
 LONG_PIECES = ["x" * 300, "7" * 300, "Ab" * 150, "q7" * 150, "Z" * 300]
 
 
+# Non-ASCII texts (scored the Python way), a lone surrogate, a NUL, a text holding the value cut:
+# invented words.
+ODD_LINE = "naïve Ωmega-7 grüße \ud800 a\x00b ÉCLAIR-09 " + "m" * 40
+
+
 @pytest.mark.parametrize("kernels", [True, False])
 @pytest.mark.parametrize("pieces_cached", [120, 100_000])
-def test_type_rows_by_key_equal_type_rows_by_text(monkeypatch, kernels, pieces_cached):
+@pytest.mark.parametrize("lazy", [False, True])
+def test_type_rows_by_key_equal_type_rows_by_text(monkeypatch, kernels, pieces_cached, lazy):
     # Invented demo lines through a small type table, which starts afresh many times, and a small
     # or a large tokenizer cache (many generations, or one): keys of an older generation or an
-    # older table must never be used.
+    # older table must never be used. Given the tokenizer's lazy texts (code points, no str) or
+    # lists; the reference is given lists.
     from streamtag import crf
     from streamtag.tokenize import BatchTokenizer
 
@@ -817,10 +824,11 @@ def test_type_rows_by_key_equal_type_rows_by_text(monkeypatch, kernels, pieces_c
     generations, epoch = set(), keyed._epoch
     for start in range(0, len(lines), 75):
         long_line = f"payload {LONG_PIECES[start // 75 % len(LONG_PIECES)]} end"
-        batch = tokenizer.tokenize_lines(lines[start : start + 75] + [long_line])
+        batch = tokenizer.tokenize_lines(lines[start : start + 75] + [long_line, ODD_LINE], lazy=lazy)
         generations.add(batch.generation)
         rows = keyed.type_rows(batch.texts, batch.kinds, batch.keys, batch.generation)
-        _assert_same_scores(keyed, rows, plain, plain.type_rows(batch.texts, batch.kinds), batch.counts)
+        texts, kinds = list(batch.texts), list(batch.kinds)
+        _assert_same_scores(keyed, rows, plain, plain.type_rows(texts, kinds), batch.counts)
         if start == 0:  # and against the sparse product itself, once
             expected, lengths = _reference_emissions(extractor, [(t.texts, t.kinds) for t in batch.per_line()],
                                                      weights)
@@ -829,7 +837,8 @@ def test_type_rows_by_key_equal_type_rows_by_text(monkeypatch, kernels, pieces_c
     assert (keyed._row_of_key >= 0).sum() > 0  # keys were recorded (and used, batch after batch)
 
 
-def test_table_starting_afresh_while_placing_the_new_types():
+@pytest.mark.parametrize("lazy", [False, True])
+def test_table_starting_afresh_while_placing_the_new_types(lazy):
     # Batch 2 repeats batch 1's tokens (known by key) and brings more new types than the table has
     # room for: the table starts afresh during the lookup of the new ones, which orphans the rows
     # taken by key; they must be looked up again. Then other lines start it afresh once more (given
@@ -845,11 +854,11 @@ def test_table_starting_afresh_while_placing_the_new_types():
     unkeyed = ["finch-19 wrote 77 rows to ledger-3 at 10:42:07 in 3.5 s"]  # invented names
     fresh_starts = []
     for lines in (first, second, second, first, other, first, second, unkeyed, first):
-        batch = tokenizer.tokenize_lines(lines)
+        batch = tokenizer.tokenize_lines(lines, lazy=lazy)
         epoch = keyed._epoch
         with_keys = (batch.keys, batch.generation) if lines is not unkeyed else ()
         rows = keyed.type_rows(batch.texts, batch.kinds, *with_keys)
-        _assert_same_scores(keyed, rows, plain, plain.type_rows(batch.texts, batch.kinds), batch.counts)
+        _assert_same_scores(keyed, rows, plain, plain.type_rows(list(batch.texts), list(batch.kinds)), batch.counts)
         fresh_starts.append(keyed._epoch - epoch)
     assert fresh_starts[1] > 0 and fresh_starts[7] > 0  # mid-lookup, and in a call without keys
 

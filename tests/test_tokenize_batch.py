@@ -485,3 +485,60 @@ def test_generation_changes_when_the_cache_clears_mid_batch(monkeypatch, kernels
     third = tokenizer.tokenize_lines(["alpha delta"])
     assert third.generation == second.generation and third.keys.tolist() == second.keys[:2].tolist()
     assert BatchTokenizer().tokenize_lines(["alpha"]).generation not in {first.generation, second.generation}
+
+
+# ------------------------------------------------------------------------------------------------
+# lazy texts and kinds (tokenize_lines(lazy=True)): the str of a token is made when it is asked for
+# ------------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("kernels", [True, False])
+@pytest.mark.parametrize("cache_size", [4, 150, 100_000])
+def test_lazy_batches_hold_the_tokens_of_tokenize(monkeypatch, kernels, cache_size):
+    # Reference: tokenize per line. Invented demo lines with long pieces, unsure pieces (RFC 3849
+    # address, RFC 2606 domain), non-ASCII words, a lone surrogate and a NUL, through small caches
+    # that clear many times (mid-batch too) and a large one that never does.
+    from streamtag import crf
+    from streamtag.demo.generate import generate_stream
+
+    monkeypatch.setattr(crf, "USE_KERNELS", kernels)
+    lines = [record["text"] for record in generate_stream(400, seed=5)]
+    odd = ["naïve Ωmega-7 \ud800 a\x00b ann@example.com 2001:db8::1", "QUJD" * 80 + " end", "", "  x  "]
+    tokenizer = BatchTokenizer(cache_size=cache_size)
+    for start in range(0, len(lines), 50):
+        chunk = lines[start : start + 50] + odd
+        lazy = tokenizer.tokenize_lines(chunk, lazy=True)
+        assert_same_as_tokenize(chunk, lazy)
+        eager = tokenizer.tokenize_lines(chunk)
+        assert type(eager.texts) is list and type(eager.kinds) is list
+        # the same tokens whichever way they are asked for, and the same keys (no piece is new now
+        # unless the cache cleared in between: then the generation tells)
+        assert lazy.texts == eager.texts and eager.texts == lazy.texts and list(lazy.texts) == eager.texts
+        assert lazy.kinds == eager.kinds and list(lazy.kinds) == eager.kinds
+        if lazy.generation == eager.generation:
+            assert lazy.keys.tolist() == eager.keys.tolist()
+        n = len(eager.texts)
+        picked = np.random.default_rng(start).integers(0, n, size=40)
+        if hasattr(lazy.texts, "pick"):  # the piece table's lazy texts (the dict cache gives lists)
+            assert lazy.texts.pick(picked) == [eager.texts[i] for i in picked.tolist()]
+            assert lazy.kinds.pick(picked) == [eager.kinds[i] for i in picked.tolist()]
+        for i in (0, n // 2, n - 1, -1, -n):
+            assert lazy.texts[i] == eager.texts[i] and lazy.kinds[i] == eager.kinds[i]
+        assert lazy.texts[5:17] == eager.texts[5:17] and lazy.kinds[::-3] == eager.kinds[::-3]
+        assert set(lazy.kinds) <= set(KINDS)
+
+
+def test_lazy_texts_behave_as_a_list():
+    # Reference: Python's list (the Sequence protocol: len, indexing, IndexError past the end,
+    # iteration, equality with a list either way round).
+    tokenizer = BatchTokenizer()
+    batch = tokenizer.tokenize_lines(["a=1 bé", "x"], lazy=True)
+    expected = ["a", "=", "1", "bé", "x"]  # common practice: key=value splits
+    assert len(batch.texts) == 5 and batch.texts == expected and expected == batch.texts
+    assert batch.texts != expected[:4] and batch.texts != "a=1bex"
+    assert list(reversed(batch.texts)) == expected[::-1] and "bé" in batch.texts
+    with pytest.raises(IndexError):
+        batch.texts[5]
+    with pytest.raises(IndexError):
+        batch.kinds[-6]
+    assert [line.texts for line in batch.per_line()] == [expected[:4], expected[4:]]
