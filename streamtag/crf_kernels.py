@@ -4,9 +4,12 @@ The kernels take a flat batch (E (N, L), lengths (B,)), order its sequences by l
 into chunks of about _CHUNK_TOKENS tokens (sequences of about one length together: few time steps,
 each wide, so the per-step overhead is paid less often). Each chunk is put in crf's packed layout (time-major, label-major (L, n): the columns of time
 step t are the chunk's sequences still running, longest first) and the per-step loops of `crf` run
-in compiled code: for each next label, for each allowed previous label, one pass over a tile of the
-step's columns. The innermost loop thus runs over sequences, which the compiler turns into SIMD code,
-where numpy pays a call and a temporary per small block. (Measured alternatives: walking one sequence
+in compiled code. Viterbi: for each next label, for each allowed previous label, one pass over a tile
+of the step's columns; the innermost loop thus runs over sequences, which the compiler turns into SIMD
+code, where numpy pays a call and a temporary per small block. Forward-backward: each step's sums over
+labels are one small matrix product (L, L) x (L, w) (np.dot, i.e. SciPy's BLAS, on contiguous copies
+of the step's columns); per (label, label) pair loops cost ~3x more, in loop overhead on steps of
+~20-60 columns. (Measured alternatives: walking one sequence
 at a time with the 19-label loop innermost does not vectorise and was 3-4x slower; one chunk for a
 whole batch of 1000 lines does not stay in cache and was 15-30% slower.)
 
@@ -108,23 +111,32 @@ _EXP_FLOOR = -708.0
 
 
 @_jit
-def _emission_factors(Ep, peaks, factors, rounded):
-    """factors (L, n) = exp(Ep - peaks) of a packed chunk Ep (L, n), peaks (n,) each column's maximum
-    (-inf if none; NaN entries skipped, they make the scaled sums NaN, which the kernels catch).
+def _gather_factors(flat, rows, Ep, factors, peaks, powers):
+    """Packed chunk Ep (L, n) = flat[rows] (N, L) as columns, peaks (n,) each token's maximum (-inf if
+    none; NaN entries skipped: they make the scaled sums NaN, which the kernels catch) and
+    factors (L, n) = exp(Ep - peaks). A token without a finite maximum gives NaN factors (flagged).
 
-    A column without a finite maximum gives NaN factors (the kernels flag it). rounded (L, n) is
-    scratch. Done per chunk while it is in cache: one pass over the batch's emissions fewer.
+    One pass over the chunk's rows of flat (a token's L values are contiguous, its peak their
+    maximum), then one per label row of the chunk with powers (n,) as scratch, which stays in the
+    first-level cache (a whole (L, n) scratch block did not).
     """
-    n_labels, n_cols = Ep.shape
-    peaks[:] = _NEG_INF
+    n_labels = flat.shape[1]
+    n_cols = rows.size
+    for col in range(n_cols):
+        row = rows[col]
+        peak = _NEG_INF
+        for j in range(n_labels):
+            value = flat[row, j]
+            Ep[j, col] = value
+            peak = value if value > peak else peak
+        peaks[col] = peak
+    bits = powers.view(np.int64)
     for j in range(n_labels):
+        values = Ep[j]
+        out = factors[j]
+        out_of_range = 0
         for col in range(n_cols):
-            value = Ep[j, col]
-            peaks[col] = value if value > peaks[col] else peaks[col]
-    out_of_range = 0
-    for j in range(n_labels):
-        for col in range(n_cols):
-            x = Ep[j, col] - peaks[col]
+            x = values[col] - peaks[col]
             out_of_range += not x >= _EXP_FLOOR
             x = x if x >= _EXP_FLOOR else _EXP_FLOOR
             shifted = x * _LOG2E + _ROUND
@@ -143,21 +155,17 @@ def _emission_factors(Ep, peaks, factors, rounded):
             p = p * r + 1.0 / 6.0
             p = p * r + 0.5
             p = p * r + 1.0
-            factors[j, col] = p * r + 1.0
-            rounded[j, col] = shifted
-    bits = rounded.view(np.int64)
-    for j in range(n_labels):
+            out[col] = p * r + 1.0
+            powers[col] = shifted
         for col in range(n_cols):  # the bits of 2**m: biased exponent m + 1023, zero mantissa
-            bits[j, col] = (bits[j, col] - _ROUND_BITS + 1023) << 52
-    for j in range(n_labels):
+            bits[col] = (bits[col] - _ROUND_BITS + 1023) << 52
         for col in range(n_cols):
-            factors[j, col] *= rounded[j, col]
-    if out_of_range:
-        for j in range(n_labels):
+            out[col] *= powers[col]
+        if out_of_range:
             for col in range(n_cols):
-                x = Ep[j, col] - peaks[col]
+                x = values[col] - peaks[col]
                 if not x >= _EXP_FLOOR:
-                    factors[j, col] = np.exp(x)
+                    out[col] = np.exp(x)
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -370,10 +378,16 @@ def _beta_zero_is_exact(Ep, col_after, i, trans, beta):
 
 
 @_jit
-def _scaled_forward(Ep, emission_exp, peak, batch_sizes, step_start, seq_of_col, trans, trans_exp, trans_shift,
-                    start, start_exp, start_shift, alpha, alpha_shift, suspect, sums, totals, lows):
-    """alpha (L, N) packed, scaled to sum 1 per column, with log scale alpha_shift (N,). Flags suspect
-    sequences."""
+def _scaled_forward(Ep, emission_exp, peak, batch_sizes, step_start, seq_of_col, trans, trans_exp_t, trans_shift,
+                    start, start_exp, start_shift, alpha, alpha_shift, suspect, sums_buffer, carry_buffer, totals, lows):
+    """alpha (L, n) packed, scaled to sum 1 per column, with log scale alpha_shift (n,). Flags suspect
+    sequences.
+
+    Each step's sums over the previous labels are one small matrix product, trans_exp_t (L, L) (the
+    transposed factors) times the previous step's scaled alpha (L, w), which the step before left
+    contiguous in carry_buffer; sums_buffer holds L x n values, carry_buffer 2 x L x n. Forbidden moves
+    have factor 0 and add exact zeros (the scaled values are finite, else the sequence is suspect).
+    """
     n_labels = Ep.shape[0]
     if batch_sizes.size == 0:
         return
@@ -397,58 +411,65 @@ def _scaled_forward(Ep, emission_exp, peak, batch_sizes, step_start, seq_of_col,
         scale = 1.0 / total
         for j in range(n_labels):
             alpha[j, col] *= scale
+    n_cols = Ep.shape[1]
+    half = n_labels * n_cols
+    carry_at = 0
+    if batch_sizes.size > 1:
+        width = batch_sizes[1]
+        carry = carry_buffer[:n_labels * width].reshape((n_labels, width))
+        for j in range(n_labels):
+            carry[j] = alpha[j, :width]
     for t in range(1, batch_sizes.size):
-        cur, prev, count = step_start[t], step_start[t - 1], batch_sizes[t]
-        for tile in range(0, count, _TILE):
-            stop = min(tile + _TILE, count)
-            width = stop - tile
-            for j in range(n_labels):
-                acc = sums[j, :width]
-                acc[:] = 0.0
-                for i in range(n_labels):
-                    factor = trans_exp[i, j]
-                    if factor == 0.0:  # a forbidden move (or one far below the others): adds exact zeros
-                        continue
-                    source = alpha[i, prev + tile:prev + stop]
-                    for r in range(width):
-                        acc[r] += source[r] * factor
-            totals[:width] = 0.0
-            lows[:width] = np.inf
-            for j in range(n_labels):
-                acc = sums[j, :width]
-                emission = emission_exp[j, cur + tile:cur + stop]
-                for r in range(width):
-                    value = acc[r] * emission[r]
-                    acc[r] = value
-                    totals[r] += value
-                    lows[r] = value if value < lows[r] else lows[r]
+        cur, prev, width = step_start[t], step_start[t - 1], batch_sizes[t]
+        previous = carry_buffer[carry_at:carry_at + n_labels * width].reshape((n_labels, width))
+        sums = sums_buffer[:n_labels * width].reshape((n_labels, width))
+        np.dot(trans_exp_t, previous, sums)
+        totals[:width] = 0.0
+        lows[:width] = np.inf
+        for j in range(n_labels):
+            acc = sums[j]
+            emission = emission_exp[j, cur:cur + width]
             for r in range(width):
-                col, prev_col = cur + tile + r, prev + tile + r
-                total = totals[r]
-                if not (0.0 < total < np.inf) or not np.isfinite(peak[col]):
-                    suspect[seq_of_col[col]] = True
-                    total = 1.0
-                elif lows[r] < _TINY:
-                    for j in range(n_labels):
-                        value = sums[j, r]
-                        if value < _TINY and not (
-                                value == 0.0 and _alpha_zero_is_exact(Ep, col, prev_col, j, trans, start, alpha)):
-                            suspect[seq_of_col[col]] = True
-                alpha_shift[col] = alpha_shift[prev_col] + trans_shift + peak[col] + np.log(total)
-                totals[r] = 1.0 / total
-            for j in range(n_labels):
-                acc = sums[j, :width]
-                out = alpha[j, cur + tile:cur + stop]
-                for r in range(width):
-                    out[r] = acc[r] * totals[r]
+                value = acc[r] * emission[r]
+                acc[r] = value
+                totals[r] += value
+                lows[r] = value if value < lows[r] else lows[r]
+        for r in range(width):
+            col, prev_col = cur + r, prev + r
+            total = totals[r]
+            if not (0.0 < total < np.inf) or not np.isfinite(peak[col]):
+                suspect[seq_of_col[col]] = True
+                total = 1.0
+            elif lows[r] < _TINY:
+                for j in range(n_labels):
+                    value = sums[j, r]
+                    if value < _TINY and not (
+                            value == 0.0 and _alpha_zero_is_exact(Ep, col, prev_col, j, trans, start, alpha)):
+                        suspect[seq_of_col[col]] = True
+            alpha_shift[col] = alpha_shift[prev_col] + trans_shift + peak[col] + np.log(total)
+            totals[r] = 1.0 / total
+        following = batch_sizes[t + 1] if t + 1 < batch_sizes.size else 0
+        carry_at = half - carry_at  # the two halves of carry_buffer take turns
+        carry = carry_buffer[carry_at:carry_at + n_labels * following].reshape((n_labels, following))
+        for j in range(n_labels):
+            acc = sums[j]
+            out = alpha[j, cur:cur + width]
+            for r in range(width):
+                out[r] = acc[r] * totals[r]
+            kept = carry[j]
+            for r in range(following):
+                kept[r] = out[r]
 
 
 @_jit
 def _scaled_backward(Ep, emission_exp, peak, batch_sizes, step_start, last_packed, seq_of_col, trans,
-                     trans_exp, trans_shift, end, end_exp, end_shift, beta, beta_shift, suspect, sums, weighted,
-                     totals, lows, col_slot, follow_rows, follow_shift):
-    """beta (L, N) packed, scaled per column, with log scale beta_shift (N,). Flags suspect sequences.
+                     trans_exp, trans_shift, end, end_exp, end_shift, beta, beta_shift, suspect, sums_buffer,
+                     weighted_buffer, totals, lows, col_slot, follow_rows, follow_shift):
+    """beta (L, n) packed, scaled per column, with log scale beta_shift (n,). Flags suspect sequences.
 
+    Each step's sums over the next labels are one small matrix product, trans_exp (L, L) times the
+    step's weighted columns E * beta (L, w), contiguous in weighted_buffer (sums_buffer and
+    weighted_buffer hold L x n values each).
     Columns with col_slot[col] >= 0 (past the first step) also get their weighted row E * beta
     (scaled) written to follow_rows[slot] (L,) and its log scale (beta_shift + emission peak) to
     follow_shift[slot], while the step is in cache: one contiguous row per token instead of L
@@ -467,55 +488,47 @@ def _scaled_backward(Ep, emission_exp, peak, batch_sizes, step_start, last_packe
         if not end_is_safe:
             suspect[seq_of_col[col]] = True
     for t in range(batch_sizes.size - 1, 0, -1):
-        cur, prev, count = step_start[t], step_start[t - 1], batch_sizes[t]
-        for tile in range(0, count, _TILE):
-            stop = min(tile + _TILE, count)
-            width = stop - tile
-            for j in range(n_labels):
-                after = weighted[j, :width]
-                emission = emission_exp[j, cur + tile:cur + stop]
-                scaled = beta[j, cur + tile:cur + stop]
-                for r in range(width):
-                    after[r] = emission[r] * scaled[r]
-            for r in range(width):  # a token after a decoded entity: keep its row for span_log_prob
-                slot = col_slot[cur + tile + r]
-                if slot >= 0:
-                    for j in range(n_labels):
-                        follow_rows[slot, j] = weighted[j, r]
-                    follow_shift[slot] = beta_shift[cur + tile + r] + peak[cur + tile + r]
-            totals[:width] = 0.0
-            lows[:width] = np.inf
-            for i in range(n_labels):
-                acc = sums[i, :width]
-                acc[:] = 0.0
-                for j in range(n_labels):
-                    factor = trans_exp[i, j]
-                    if factor == 0.0:
-                        continue
-                    after = weighted[j, :width]
-                    for r in range(width):
-                        acc[r] += after[r] * factor
-                for r in range(width):
-                    totals[r] += acc[r]
-                    lows[r] = acc[r] if acc[r] < lows[r] else lows[r]
+        cur, prev, width = step_start[t], step_start[t - 1], batch_sizes[t]
+        weighted = weighted_buffer[:n_labels * width].reshape((n_labels, width))
+        sums = sums_buffer[:n_labels * width].reshape((n_labels, width))
+        for j in range(n_labels):
+            after = weighted[j]
+            emission = emission_exp[j, cur:cur + width]
+            scaled = beta[j, cur:cur + width]
             for r in range(width):
-                col, prev_col = cur + tile + r, prev + tile + r
-                total = totals[r]
-                if not (0.0 < total < np.inf):
-                    suspect[seq_of_col[col]] = True
-                    total = 1.0
-                elif lows[r] < _TINY:
-                    for i in range(n_labels):
-                        value = sums[i, r]
-                        if value < _TINY and not (value == 0.0 and _beta_zero_is_exact(Ep, col, i, trans, beta)):
-                            suspect[seq_of_col[col]] = True
-                beta_shift[prev_col] = beta_shift[col] + trans_shift + peak[col] + np.log(total)
-                totals[r] = 1.0 / total
-            for i in range(n_labels):
-                acc = sums[i, :width]
-                out = beta[i, prev + tile:prev + stop]
-                for r in range(width):
-                    out[r] = acc[r] * totals[r]
+                after[r] = emission[r] * scaled[r]
+        for r in range(width):  # a token after a decoded entity: keep its row for span_log_prob
+            slot = col_slot[cur + r]
+            if slot >= 0:
+                for j in range(n_labels):
+                    follow_rows[slot, j] = weighted[j, r]
+                follow_shift[slot] = beta_shift[cur + r] + peak[cur + r]
+        np.dot(trans_exp, weighted, sums)
+        totals[:width] = 0.0
+        lows[:width] = np.inf
+        for i in range(n_labels):
+            acc = sums[i]
+            for r in range(width):
+                totals[r] += acc[r]
+                lows[r] = acc[r] if acc[r] < lows[r] else lows[r]
+        for r in range(width):
+            col, prev_col = cur + r, prev + r
+            total = totals[r]
+            if not (0.0 < total < np.inf):
+                suspect[seq_of_col[col]] = True
+                total = 1.0
+            elif lows[r] < _TINY:
+                for i in range(n_labels):
+                    value = sums[i, r]
+                    if value < _TINY and not (value == 0.0 and _beta_zero_is_exact(Ep, col, i, trans, beta)):
+                        suspect[seq_of_col[col]] = True
+            beta_shift[prev_col] = beta_shift[col] + trans_shift + peak[col] + np.log(total)
+            totals[r] = 1.0 / total
+        for i in range(n_labels):
+            acc = sums[i]
+            out = beta[i, prev:prev + width]
+            for r in range(width):
+                out[r] = acc[r] * totals[r]
 
 
 @_jit
@@ -609,11 +622,25 @@ def decode_flat(E, lengths, trans, start, end):
     trans_exp, trans_shift = _exp_shifted(trans)
     start_exp, start_shift = _exp_shifted(start)
     end_exp, end_shift = _exp_shifted(end)
-    sums = np.empty((n_labels, _TILE))
-    weighted = np.empty((n_labels, _TILE))
-    totals = np.empty(_TILE)
-    lows = np.empty(_TILE)
+    trans_exp_t = np.ascontiguousarray(trans_exp.T)
     offsets = _offsets(lengths)
+    # Scratch for the largest chunk, sliced per chunk (an allocation per chunk costs more than the slice).
+    max_cols = min(n_tokens, max(_CHUNK_TOKENS, lengths.max() if lengths.size else 0))
+    sums = np.empty(n_labels * max_cols)
+    carry = np.empty(2 * n_labels * max_cols)
+    weighted = np.empty(n_labels * max_cols)
+    totals = np.empty(max_cols)
+    lows = np.empty(max_cols)
+    packed_buffer = np.empty(n_labels * max_cols)
+    factors_buffer = np.empty(n_labels * max_cols)
+    peaks_buffer = np.empty(max_cols)
+    powers = np.empty(max_cols)
+    alpha_shift_buffer = np.empty(max_cols)
+    beta_shift_buffer = np.empty(max_cols)
+    chunk_labels = np.zeros(max_cols, dtype=np.int64)
+    col_slot_buffer = np.empty(max_cols, dtype=np.int64)
+    marginal_sums = np.empty(max_cols)
+    final_scores_buffer = np.empty(max_cols)
     block = 0
     order = _by_length(lengths)
     first = 0
@@ -625,18 +652,22 @@ def decode_flat(E, lengths, trans, start, end):
         n_cols = rows.size
         if n_cols == 0:
             continue
-        Ep = _gather(E, rows)
-        factors = np.empty(Ep.shape)
-        peaks = np.empty(n_cols)
-        _emission_factors(Ep, peaks, factors, np.empty(Ep.shape))
+        Ep = packed_buffer[:n_labels * n_cols].reshape((n_labels, n_cols))
+        factors = factors_buffer[:n_labels * n_cols].reshape((n_labels, n_cols))
+        peaks = peaks_buffer[:n_cols]
+        _gather_factors(E, rows, Ep, factors, peaks, powers)
         alpha = alpha_buffer[block:block + n_labels * n_cols].reshape((n_labels, n_cols))
         beta = beta_buffer[block:block + n_labels * n_cols].reshape((n_labels, n_cols))
-        alpha_shift = np.empty(n_cols)
-        beta_shift = np.empty(n_cols)
+        alpha_shift = alpha_shift_buffer[:n_cols]
+        beta_shift = beta_shift_buffer[:n_cols]
         # Viterbi's scores go in beta's block, which the backward pass overwrites afterwards.
-        final_scores = _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end, beta, labels)
-        _scaled_forward(Ep, factors, peaks, batch_sizes, step_start, seq_of_col, trans, trans_exp, trans_shift,
-                        start, start_exp, start_shift, alpha, alpha_shift, suspect, sums, totals, lows)
+        _viterbi_forward(Ep, batch_sizes, step_start, trans, start, beta)
+        final_scores = final_scores_buffer[:last_cols.size]
+        _viterbi_backtrace(beta, batch_sizes, step_start, last_cols, trans, end, chunk_labels, final_scores)
+        for col in range(n_cols):
+            labels[rows[col]] = chunk_labels[col]
+        _scaled_forward(Ep, factors, peaks, batch_sizes, step_start, seq_of_col, trans, trans_exp_t, trans_shift,
+                        start, start_exp, start_shift, alpha, alpha_shift, suspect, sums, carry, totals, lows)
         for k in range(last_cols.size):
             col, seq = last_cols[k], last_seqs[k]
             scores[seq] = final_scores[k]
@@ -647,13 +678,13 @@ def decode_flat(E, lengths, trans, start, end):
                 suspect[seq] = True
                 total = 1.0
             log_z[seq] = alpha_shift[col] + end_shift + np.log(total)
-        col_slot = np.empty(n_cols, dtype=np.int64)
+        col_slot = col_slot_buffer[:n_cols]
         n_follow = _follow_slots(rows, seq_of_col, offsets, labels, col_slot, follow_slot, n_follow)
         _scaled_backward(Ep, factors, peaks, batch_sizes, step_start, last_cols, seq_of_col, trans, trans_exp,
                          trans_shift, end, end_exp, end_shift, beta, beta_shift, suspect, sums, weighted, totals, lows,
                          col_slot, follow_rows, follow_shift)
         _confidence_and_row_map(alpha, alpha_shift, beta, beta_shift, rows, seq_of_col, labels, log_z, block,
-                                np.empty(n_cols), confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat,
+                                marginal_sums[:n_cols], confidence, row_base, row_stride, alpha_shift_flat, beta_shift_flat,
                                 alpha_of_label)
         block += n_labels * n_cols
     return (labels, scores, alpha_buffer, beta_buffer, row_base, row_stride, alpha_shift_flat, beta_shift_flat,
