@@ -56,6 +56,7 @@ _PAD = 64
 
 _SPACE, _DOT, _COLON, _DASH, _PLUS, _SLASH, _BACKSLASH, _TILDE = 32, 46, 58, 45, 43, 47, 92, 126
 _APOSTROPHE, _PERCENT, _AT, _UNDERSCORE, _COMMA = 39, 37, 64, 95, 44
+_TAB = 9
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -1198,6 +1199,9 @@ def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, ro
     Writes each token's start and end in its piece and its kind (index into KINDS) to row_starts,
     row_ends and row_kinds (the caller has room for one row per character). Returns first (K,) and
     n_rows (K,) per piece (n_rows -1: unsure, no rows; see `scan`) and the number of rows written.
+    Unlike `scan`, a tab inside a piece is no reason to be unsure: no part of the pattern can read
+    white space (tests/test_tokenize_batch.py checks this for ' ' and tab), so a tab separates the
+    tokens around it exactly as ' ' does, and the piece is scanned as the runs between its tabs.
     """
     n_given = piece_starts.shape[0]
     first = np.empty(n_given, dtype=np.int64)
@@ -1214,6 +1218,9 @@ def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, ro
         if sure:
             for q in range(length):
                 c = cp[a + q]
+                if c == _TAB:  # white space: it ends a token as ' ' does (a 0, as between scan's pieces)
+                    buffer[1 + q] = 0
+                    continue
                 if c < 0x21 or c > 0x7E:
                     sure = False
                     break
@@ -1224,6 +1231,9 @@ def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, ro
                 buffer[q] = 0
             p = 1
             while p <= length:
+                if buffer[p] == 0:  # a tab
+                    p += 1
+                    continue
                 rule, e = _match(s, p)
                 if e == _UNSURE:
                     sure = False

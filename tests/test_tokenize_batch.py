@@ -78,7 +78,8 @@ def test_pattern_cannot_tell_a_space_from_the_edge_of_the_string():
     # Python's own regular-expression parser (re._parser) reads the token pattern. If no node can
     # consume ' ' and there are no anchors (^ $ \b \A \Z) or back-references, then every
     # look-ahead and look-behind fails the same way at a ' ' as at the end or start of the string,
-    # and no token spans a ' ': so tokenizing the pieces of line.split(' ') apart is exact.
+    # and no token spans a ' ': so tokenizing the pieces of line.split(' ') apart is exact. The same
+    # holds for a tab, which the compiled piece scanner treats as ' '.
     parsed = re._parser.parse(_TOKEN_RE.pattern, _TOKEN_RE.flags)
     ops = {op for op, _ in _nodes(parsed)}
     assert ops <= _STRUCTURE | _CONSUMING, ops - _STRUCTURE - _CONSUMING
@@ -86,7 +87,7 @@ def test_pattern_cannot_tell_a_space_from_the_edge_of_the_string():
     assert len(consuming) > 100  # the walk reached the whole pattern
     for node in consuming:
         single = re._compiler.compile(re._parser.SubPattern(parsed.state, [node]), parsed.state.flags)
-        assert single.fullmatch(" ") is None, node
+        assert single.fullmatch(" ") is None and single.fullmatch("\t") is None, node
     # The check is sufficient, not exact: it flags patterns that read spaces (Python Library
     # Reference, re: lookarounds, $, \s) and, to be safe, any anchor such as \b. Where it flags one,
     # splitting at ' ' really can change the matches; the pattern it passes behaves the same.
@@ -542,3 +543,12 @@ def test_lazy_texts_behave_as_a_list():
     with pytest.raises(IndexError):
         batch.kinds[-6]
     assert [line.texts for line in batch.per_line()] == [expected[:4], expected[4:]]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.lists(st.sampled_from(FRAGMENTS + ["\t", "\t\t"]), max_size=6).map("".join), min_size=1,
+                max_size=30))
+def test_property_pieces_holding_tabs(pieces):
+    # Reference: tokenize per line. Tabs inside pieces (the scanner reads them as ' '), at their
+    # ends, doubled, or a piece of tabs alone; each batch twice (new pieces, then cached ones).
+    tokenize_twice([" ".join(pieces[i::2]) for i in range(2)])
