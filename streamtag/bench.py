@@ -153,7 +153,7 @@ def _stage_times(tagger: Tagger, batches: list[list[bytes]]) -> dict[str, float]
     for chunk in batches:
         texts = [raw.decode("utf-8", "replace") for raw in chunk]
         t0 = clock()
-        tokens = tagger.tokenizer.tokenize_lines(texts)
+        tokens = tagger.tokenizer.tokenize_lines(texts, lazy=True)
         t1 = clock()
         rows = tagger.scorer.type_rows(tokens.texts, tokens.kinds, tokens.keys, tokens.generation)
         t2 = clock()
@@ -164,7 +164,7 @@ def _stage_times(tagger: Tagger, batches: list[list[bytes]]) -> dict[str, float]
         # The whole of tag on the same lines, now cached: what is not tokenize/types is the rest.
         tagger.tag(texts, review_below=0.5)
         t5 = clock()
-        tokens = tagger.tokenizer.tokenize_lines(texts)
+        tokens = tagger.tokenizer.tokenize_lines(texts, lazy=True)
         rows = tagger.scorer.type_rows(tokens.texts, tokens.kinds, tokens.keys, tokens.generation)
         emissions = tagger.scorer.emissions(rows, tokens.counts)
         crf.decode(emissions, tokens.counts, tagger.trans, tagger.start, tagger.end)

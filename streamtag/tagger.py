@@ -171,7 +171,7 @@ class Tagger:
         which get the reason and runner-up a reviewer sees)."""
         if not lines:
             return TaggedBatch.empty(self._type_names)
-        tokens = self.tokenizer.tokenize_lines(lines)
+        tokens = self.tokenizer.tokenize_lines(lines, lazy=True)  # token strs made only when read
         type_rows = self.scorer.type_rows(tokens.texts, tokens.kinds, tokens.keys, tokens.generation)
         batch = self._cut(tokens.counts)
         if batch.token_index is not None:
