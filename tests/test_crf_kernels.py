@@ -289,6 +289,40 @@ def test_ties_between_integer_scores_match_numpy(seed):
     assert_same_as_numpy(E, lengths, trans, start, rng.integers(-1, 2, size=5).astype(float))
 
 
+@pytest.mark.parametrize("seed", range(6))
+def test_viterbi_leads_at_the_margin_and_signed_zeros_match_numpy_bit_for_bit(seed):
+    # The kernel's Viterbi step takes one add where a column's best previous label leads the runner-up
+    # by more than the transitions can make up (crf._MaxPlus's test), a maximum over moves elsewhere.
+    # Weights on a grid of 0.25 make leads equal to that margin, exact ties and zero sums (-0.0 and
+    # +0.0 compare equal but are different bits: IEEE 754-2008, section 6.3) all common. Labels as
+    # the tagger's: O and B-/I- of nine types under the BIO mask (common practice), and a set without
+    # prefixes, where every move is allowed. Reference: the numpy code, itself checked against brute
+    # force in tests/test_crf.py; and for sequences of up to three tokens the brute force below.
+    rng = np.random.default_rng(seed)
+    labels = ["O"] + [f"{p}-t{k}" for k in range(9) for p in "BI"] if seed % 2 == 0 else ["w", "x", "y", "z"]
+    n_labels = len(labels)
+    allowed_trans, allowed_start = crf.bio_allowed(labels)
+    grid = np.array([-0.5, -0.25, -0.0, 0.0, 0.25, 0.5, 1.0])
+    trans, start = crf.apply_mask(rng.choice(grid, size=(n_labels, n_labels)), rng.choice(grid, size=n_labels),
+                                  allowed_trans, allowed_start)
+    end = rng.choice(grid, size=n_labels)
+    lengths = rng.integers(0, 30, size=300)
+    lengths[:40] = rng.integers(1, 4, size=40)
+    E = rng.choice(grid, size=(int(lengths.sum()), n_labels))
+    got_labels, got_scores = crf.viterbi(E, lengths, trans, start, end)
+    ref_labels, ref_scores = numpy_viterbi(E, lengths, trans, start, end)
+    np.testing.assert_array_equal(got_labels, ref_labels)
+    np.testing.assert_array_equal(got_scores.view(np.int64), ref_scores.view(np.int64))  # same bits
+    decoded = crf.decode(E, lengths, trans, start, end)
+    np.testing.assert_array_equal(decoded.labels, ref_labels)
+    np.testing.assert_array_equal(decoded.scores.view(np.int64), ref_scores.view(np.int64))
+    offsets = offsets_of(lengths)
+    for b in range(40):  # short sequences: the best score by enumeration (Lafferty et al. 2001)
+        rows = slice(offsets[b], offsets[b] + lengths[b])
+        _, scores = brute_force(E[rows], trans, start, end)
+        assert got_scores[b] == scores.max()
+
+
 # ----------------------------------------------------------------------------------------------------
 # Equal to the numpy path (the reference implementation)
 
