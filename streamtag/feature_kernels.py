@@ -22,6 +22,7 @@ from numba.extending import intrinsic
 
 # The decode kernels' decorators: same options, machine code cached beside this module.
 from streamtag.crf_kernels import _jit, _jit_cached, same_run
+from streamtag.scan_kernels import _KEY_AHEAD, _SLOT_AHEAD, _prefetch
 
 
 @_jit_cached
@@ -184,9 +185,23 @@ def place_types(texts, text_starts, text_ends, kinds, kind_starts, kind_ends, sl
     """
     n_rows, used = state[0], state[1]
     n_new = 0
-    for t in range(text_starts.shape[0]):
+    n_tokens = text_starts.shape[0]
+    # All keys hashed first, so that the slots of the keys _SLOT_AHEAD further on, and (half as far)
+    # their stored keys, can be asked of memory while this one is looked up: the index outgrows the
+    # caches, and each lookup was otherwise two waits for memory in a row.
+    hashes = np.empty(n_tokens, dtype=np.uint64)
+    for t in range(n_tokens):
+        hashes[t] = _key_hash(texts, text_starts[t], text_ends[t], kinds, kind_starts[t], kind_ends[t])
+    slot_shift = np.uint64(64 - hash_bits)
+    for t in range(n_tokens):
+        if t + _SLOT_AHEAD < n_tokens:
+            _prefetch(slots, np.int64((hashes[t + _SLOT_AHEAD] * _GOLDEN) >> slot_shift))
+        if t + _KEY_AHEAD < n_tokens:
+            ahead = np.int64((hashes[t + _KEY_AHEAD] * _GOLDEN) >> slot_shift)
+            if slots[ahead, SLOT_ROW] != 0:
+                _prefetch(arena, slots[ahead, SLOT_START])
         a, b, c, d = text_starts[t], text_ends[t], kind_starts[t], kind_ends[t]
-        h = _key_hash(texts, a, b, kinds, c, d)
+        h = hashes[t]
         row, slot = _find(slots, hash_bits, arena, h, texts, a, b, kinds, c, d)
         if row == 0:
             if n_rows >= limit:
