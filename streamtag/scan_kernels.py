@@ -8,8 +8,8 @@ pattern's fast paths are proven not to change any token, so they are left out) a
 first that matches, with the regex's backtracking where a quantifier is not possessive. Each rule
 below names the part of the pattern it follows and how its candidates are ordered.
 
-Rules scanned: timestamp, ipv4, uuid, mac, path, version, hex, number, word, host, ident, punct.
-Rules not scanned: url, email and ipv6. At each position where one of them could match before a
+Rules scanned: timestamp, ipv4, email, uuid, mac, path, version, hex, number, word, host, ident, punct.
+Rules not scanned: url and ipv6. At each position where one of them could match before a
 rule of lower priority (a test that never misses a match, but may report one that the full rule
 would reject), the whole piece is left *unsure* and no tokens are given for it; so is a piece with
 any character outside printable ASCII (0x21..0x7e: tab, controls, any non-ASCII character) or
@@ -43,11 +43,11 @@ __all__ = ["MAX_PIECE", "RULES_SCANNED", "BatchKernels", "batch_kernels", "scan"
 MAX_PIECE = 1024
 
 RULES_SCANNED = ("timestamp", "ipv4", "uuid", "mac", "path", "version", "hex", "number", "word", "host",
-                 "ident", "punct")
+                 "ident", "punct", "email")
 
 # Rule codes inside the kernel (indices into _KIND_CODES, which maps them to indices into KINDS;
 # passed as an argument so the cached machine code never holds a stale order of KINDS).
-_TIMESTAMP, _IPV4, _UUID, _MAC, _PATH, _VERSION, _HEX, _NUMBER, _WORD, _HOST, _IDENT, _PUNCT = range(12)
+_TIMESTAMP, _IPV4, _UUID, _MAC, _PATH, _VERSION, _HEX, _NUMBER, _WORD, _HOST, _IDENT, _PUNCT, _EMAIL = range(13)
 _KIND_CODES = np.array([KINDS.index(rule) for rule in RULES_SCANNED], dtype=np.int8)
 _UNSURE = -2  # a rule end meaning "a rule not scanned could match here"
 # Zero bytes after the string (see scan_kernel): the farthest fixed-offset read past a position is
@@ -337,17 +337,61 @@ def _url_may_match(s, p):
 
 
 @_jit
-def _email_may_match(s, p):
-    """_EMAIL needs \\w[\\w.+\\-]{0,63}+(?<!\\.)@ at p (the domain is not checked)."""
+def _email_local_end(s, p):
+    """The '@' that ends _EMAIL's local part \\w[\\w.+\\-]{0,63}+(?<!\\.)@ at p, or -1 (possessive:
+    the run's end is fixed, so there is one place to try)."""
     if not _is_word(_at(s, p)):
-        return False
+        return -1
     j = p + 1
     while j - p <= 63:
         c = _at(s, j)
         if not (_is_word(c) or c == _DOT or c == _PLUS or c == _DASH):
             break
         j += 1
-    return _at(s, j) == _AT and _at(s, j - 1) != _DOT
+    return j if _at(s, j) == _AT and _at(s, j - 1) != _DOT else -1
+
+
+@_jit
+def _match_email(s, p):
+    """_EMAIL at p: its end, or -1.
+
+    Domain: (?:_DOMAIN_LABEL\\.){1,16} then a letter and [\\w\\-]{0,62}+, or \\[[0-9A-Za-z:.]{2,45}\\]
+    (no look-ahead after either). A label [^\\W_][\\w\\-]{0,62}+ is possessive, so each repetition
+    ends at one place; the greedy {1,16} takes as many labels as it can and gives them back one at
+    a time until the last part matches after them."""
+    j = _email_local_end(s, p)
+    if j < 0:
+        return -1
+    q = j + 1
+    if _at(s, q) == 91:  # '[': an address literal; ']' is outside its class, so no giving back
+        k = 0
+        while k <= 45:
+            c = _at(s, q + 1 + k)
+            if not (_is_alnum(c) or c == _COLON or c == _DOT):
+                break
+            k += 1
+        return q + 2 + k if 2 <= k <= 45 and _at(s, q + 1 + k) == 93 else -1
+    # The last part matches after a label exactly when a letter follows it, so the labels given
+    # back first are those after the last such place: the match ends after the last part there.
+    last = -1
+    n_labels = 0
+    at = q
+    while n_labels < 16 and _is_alnum(_at(s, at)):
+        e = at + 1
+        while e - at <= 62 and (_is_word(_at(s, e)) or _at(s, e) == _DASH):
+            e += 1
+        if _at(s, e) != _DOT:
+            break
+        n_labels += 1
+        at = e + 1
+        if _is_letter(_at(s, at)):
+            last = at
+    if last < 0:
+        return -1
+    e = last + 1
+    while e - last <= 62 and (_is_word(_at(s, e)) or _at(s, e) == _DASH):
+        e += 1
+    return e
 
 
 @_jit
@@ -869,8 +913,11 @@ def _match(s, p):
         e = _match_ipv4(s, p)
         if e >= 0:
             return _IPV4, e
-        if _url_may_match(s, p) or _email_may_match(s, p):
+        if _url_may_match(s, p):
             return _PUNCT, _UNSURE
+        e = _match_email(s, p)
+        if e >= 0:
+            return _EMAIL, e
         e = _match_uuid(s, p)
         if e >= 0:
             return _UUID, e
