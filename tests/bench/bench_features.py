@@ -9,7 +9,10 @@ Two workloads, both invented syslog-style lines:
 Tokens come from streamtag.tokenize when it is importable, otherwise from a small regex split.
 Prints tokens per CPU second for fit and for transform (cold cache on the first pass, warm after),
 and for the whole path tokenize + features + emissions + Viterbi with random weights (19 labels, the
-size of a nine-type BIO label set) when streamtag.tokenize and streamtag.crf are importable.
+size of a nine-type BIO label set) when streamtag.tokenize and streamtag.crf are importable. Then the
+path the tagger takes (CPU us per line, best of R, after warm-up lines): BatchTokenizer with lazy
+token texts, EmissionScorer.type_rows with the tokenizer's keys, EmissionScorer.emissions (checked
+once against transform(...) @ W).
 """
 
 from __future__ import annotations
@@ -115,6 +118,8 @@ def main() -> None:
               f"batch {args.batch}: cold cache {n_tokens / cold:,.0f} tokens/s, "
               f"warm {n_tokens / warm:,.0f} tokens/s, {nnz / rows:.1f} features/token")
     pipeline(spec, vocabulary, [make_line(rng) for _ in range(args.lines)], args.batch)
+    tagger_path(spec, vocabulary, [make_line(rng) for _ in range(args.lines)],
+                [make_line(rng) for _ in range(args.lines)], args.repeat)
 
 
 def pipeline(spec: FeatureSpec, vocabulary: list[str], raw_lines: list[str], batch: int) -> None:
@@ -149,6 +154,45 @@ def pipeline(spec: FeatureSpec, vocabulary: list[str], raw_lines: list[str], bat
     parts = ", ".join(f"{name} {n_tokens / s:,.0f}/s" for name, s in stage.items())
     print(f"pipeline  {len(raw_lines):,} fresh lines, {n_tokens:,} tokens: {n_tokens / total:,.0f} tokens/s "
           f"overall ({parts})")
+
+
+def tagger_path(spec: FeatureSpec, vocabulary: list[str], warmup: list[str], raw_lines: list[str],
+                repeat: int, batch: int = 1000) -> None:
+    """As `tagger.Tagger` scores a batch: lazy tokens -> type rows by key -> emissions, per stage."""
+    try:
+        import numpy as np
+
+        from streamtag.features import EmissionScorer
+        from streamtag.tokenize import BatchTokenizer
+    except ImportError as missing:
+        print(f"tagger path skipped ({missing})")
+        return
+    weights = np.random.default_rng(5).normal(size=(len(vocabulary), 19))
+    extractor = FeatureExtractor(spec, vocabulary)
+    best = {"tokenize": float("inf"), "type rows": float("inf"), "emissions": float("inf")}
+    for _ in range(repeat):
+        tokenizer, scorer = BatchTokenizer(), EmissionScorer(extractor, weights)
+        spent = dict.fromkeys(best, 0.0)
+        for number, lines in enumerate((warmup, raw_lines)):
+            for i in range(0, len(lines), batch):
+                seconds, tokens = timed(lambda: tokenizer.tokenize_lines(lines[i:i + batch], lazy=True))
+                spent["tokenize"] += seconds
+                seconds, rows = timed(lambda: scorer.type_rows(tokens.texts, tokens.kinds, tokens.keys,
+                                                               tokens.generation))
+                spent["type rows"] += seconds
+                seconds, emissions = timed(lambda: scorer.emissions(rows, tokens.counts))
+                spent["emissions"] += seconds
+                if i == 0 and number == 1:
+                    pairs = [(t.texts, t.kinds) for t in tokens.per_line()]
+                    expected = extractor.transform(pairs)[0] @ weights
+                    if not np.allclose(emissions, expected, rtol=0, atol=1e-9):
+                        raise SystemExit("emissions differ from transform(...) @ W")
+            if number == 0:
+                spent = dict.fromkeys(best, 0.0)      # the warm-up lines fill the caches, uncounted
+        best = {name: min(best[name], spent[name]) for name in best}
+    parts = ", ".join(f"{name} {s / len(raw_lines) * 1e6:.2f}" for name, s in best.items())
+    print(f"tagger path {len(raw_lines):,} fresh lines after {len(warmup):,}, batches of {batch}, best of "
+          f"{repeat}: us/line {parts}")
 
 
 if __name__ == "__main__":
