@@ -302,7 +302,8 @@ def _max_plus_tables(trans):
 def _viterbi_forward(Ep, batch_sizes, step_start, trans, start, delta, tables, top, second, leaders):
     """delta (L, n) packed: delta[t, j] = max_i (delta[t-1, i] + trans[i, j]) + E[t, j], as crf does.
 
-    tables: `_max_plus_tables(trans)`; top, second (n,) float and leaders (n,) int64 are scratch.
+    tables: `_max_plus_tables(trans)`; top, second (n,) float are scratch. leaders (n,) int64 gets, for each
+    column with a successor, its clear leader (see below) or -1 (none, or no dense labels: not written).
     Most columns have a clear leader, as in crf._MaxPlus: if the best previous label i of a column
     leads the runner-up by more than need[i], the move from i is the largest (or an equal value)
     for every dense next label j, so delta[t, j] = delta[t-1, i] + trans[i, j] + E[t, j], one add
@@ -343,10 +344,10 @@ def _viterbi_forward(Ep, batch_sizes, step_start, trans, start, delta, tables, t
                 while leader < n_labels - 1 and not delta[leader, prev + r] == value:
                     leader += 1
                 if value - runner_up[r] > need[leader]:
-                    leaders[r] = leader
+                    leaders[prev + r] = leader
                     votes[leader] += 1
                 else:
-                    leaders[r] = -1
+                    leaders[prev + r] = -1
             common = np.argmax(votes)
             # Rows of dense labels as if every column's leader were the common one, then the others.
             for d in range(n_dense):
@@ -357,7 +358,7 @@ def _viterbi_forward(Ep, batch_sizes, step_start, trans, start, delta, tables, t
                 for r in range(width):
                     row[r] = best[r] + move + emission[r]
             for r in range(width):
-                leader = leaders[r]
+                leader = leaders[prev + r]
                 if leader == common:
                     continue
                 if leader >= 0:
@@ -402,12 +403,19 @@ def _viterbi_forward(Ep, batch_sizes, step_start, trans, start, delta, tables, t
 
 
 @_jit
-def _viterbi_backtrace(delta, batch_sizes, step_start, last_packed, trans, end, labels, final_scores):
+def _viterbi_backtrace(delta, batch_sizes, step_start, last_packed, trans, end, labels, final_scores, leaders,
+                       tables):
     """Labels (N,) packed and the path score of each non-empty sequence (in last_packed's order).
 
     The last label is the first argmax of delta + end; walking back, each label is the first argmax
-    of delta[t] + trans[:, next label], as in crf (no back-pointers are stored).
+    of delta[t] + trans[:, next label], as in crf (no back-pointers are stored). Where the forward pass
+    found a clear leader l for the column (leaders, see `_viterbi_forward`) and the next label is dense,
+    no move beats l's, so the first argmax is l or an earlier label whose sum rounds to the same value
+    (or label 0 if its sum is NaN, which no comparison replaces): only labels below l are looked at.
+    Otherwise the scan starts at label 0 and looks at the allowed moves into the next label only: a
+    forbidden move's sum is -inf or NaN, which never replaces the best so far.
     """
+    is_dense, _, _, _, pred_start, pred_label, _ = tables
     n_labels = delta.shape[0]
     for k in range(last_packed.size):
         col = last_packed[k]
@@ -424,14 +432,28 @@ def _viterbi_backtrace(delta, batch_sizes, step_start, last_packed, trans, end, 
         nxt, cur = step_start[t + 1], step_start[t]
         for r in range(batch_sizes[t + 1]):
             following = labels[nxt + r]
+            col = cur + r
+            leader = leaders[col]
+            if leader >= 0 and is_dense[following]:
+                label = leader
+                if leader > 0:
+                    top = delta[leader, col] + trans[leader, following]
+                    for i in range(leader):
+                        value = delta[i, col] + trans[i, following]
+                        if value == top or (i == 0 and value != value):
+                            label = i
+                            break
+                labels[col] = label
+                continue
             label = 0
-            top = delta[0, cur + r] + trans[0, following]
-            for i in range(1, n_labels):
-                value = delta[i, cur + r] + trans[i, following]
+            top = delta[0, col] + trans[0, following]
+            for p in range(pred_start[following], pred_start[following + 1]):
+                i = pred_label[p]
+                value = delta[i, col] + trans[i, following]
                 if value > top:
                     top = value
                     label = i
-            labels[cur + r] = label
+            labels[col] = label
 
 
 @_jit
@@ -441,9 +463,10 @@ def _viterbi(Ep, batch_sizes, step_start, last_cols, rows, trans, start, end, de
     labels = np.zeros(Ep.shape[1], dtype=np.int64)
     final_scores = np.empty(last_cols.size)
     n_cols = Ep.shape[1]
+    leaders = np.empty(n_cols, dtype=np.int64)
     _viterbi_forward(Ep, batch_sizes, step_start, trans, start, delta, tables, np.empty(n_cols), np.empty(n_cols),
-                     np.empty(n_cols, dtype=np.int64))
-    _viterbi_backtrace(delta, batch_sizes, step_start, last_cols, trans, end, labels, final_scores)
+                     leaders)
+    _viterbi_backtrace(delta, batch_sizes, step_start, last_cols, trans, end, labels, final_scores, leaders, tables)
     for col in range(rows.size):
         labels_out[rows[col]] = labels[col]
     return final_scores
@@ -788,7 +811,8 @@ def decode_flat(E, lengths, trans, start, end):
         # Viterbi's scores go in beta's block, which the backward pass overwrites afterwards.
         _viterbi_forward(Ep, batch_sizes, step_start, trans, start, beta, tables, top, second, leaders)
         final_scores = final_scores_buffer[:last_cols.size]
-        _viterbi_backtrace(beta, batch_sizes, step_start, last_cols, trans, end, chunk_labels, final_scores)
+        _viterbi_backtrace(beta, batch_sizes, step_start, last_cols, trans, end, chunk_labels, final_scores, leaders,
+                           tables)
         for col in range(n_cols):
             labels[rows[col]] = chunk_labels[col]
         _scaled_forward(Ep, factors, peaks, batch_sizes, step_start, seq_of_col, trans, trans_exp_t, trans_shift,
