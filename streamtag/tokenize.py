@@ -595,7 +595,9 @@ class BatchTokenizer:
         line_lengths = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
         if self._n_rows > self.max_rows:  # rows overflow: start afresh (as when the pieces overflow)
             self._clear()
-        n_pieces = joined.count(" ") + 1
+        # Counted on the code points: str.count of one character cost ten times as much (~0.25 ms
+        # for a batch of 1000 lines).
+        n_pieces = int(np.count_nonzero(code_points == 32)) + 1
         misses = None
         scan_kernels = _scan_kernels()
         for may_clear in (table.n_pieces > 0, False):
