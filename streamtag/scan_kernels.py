@@ -8,9 +8,9 @@ pattern's fast paths are proven not to change any token, so they are left out) a
 first that matches, with the regex's backtracking where a quantifier is not possessive. Each rule
 below names the part of the pattern it follows and how its candidates are ordered.
 
-Rules scanned: timestamp, ipv4, email, uuid, mac, path, version, hex, number, word, host, ident, punct.
-Rules not scanned: url and ipv6. At each position where one of them could match before a
-rule of lower priority (a test that never misses a match, but may report one that the full rule
+Rules scanned: timestamp, ipv4, email, uuid, ipv6, mac, path, version, hex, number, word, host, ident,
+punct. Rule not scanned: url. At each position where it could match before a rule of lower
+priority (a test that never misses a match, but may report one that the full rule
 would reject), the whole piece is left *unsure* and no tokens are given for it; so is a piece with
 any character outside printable ASCII (0x21..0x7e: tab, controls, any non-ASCII character) or
 longer than `MAX_PIECE` characters. The caller tokenizes unsure pieces with the pattern. In a
@@ -43,11 +43,11 @@ __all__ = ["MAX_PIECE", "RULES_SCANNED", "BatchKernels", "batch_kernels", "scan"
 MAX_PIECE = 1024
 
 RULES_SCANNED = ("timestamp", "ipv4", "uuid", "mac", "path", "version", "hex", "number", "word", "host",
-                 "ident", "punct", "email")
+                 "ident", "punct", "email", "ipv6")
 
 # Rule codes inside the kernel (indices into _KIND_CODES, which maps them to indices into KINDS;
 # passed as an argument so the cached machine code never holds a stale order of KINDS).
-_TIMESTAMP, _IPV4, _UUID, _MAC, _PATH, _VERSION, _HEX, _NUMBER, _WORD, _HOST, _IDENT, _PUNCT, _EMAIL = range(13)
+_TIMESTAMP, _IPV4, _UUID, _MAC, _PATH, _VERSION, _HEX, _NUMBER, _WORD, _HOST, _IDENT, _PUNCT, _EMAIL, _IPV6 = range(14)
 _KIND_CODES = np.array([KINDS.index(rule) for rule in RULES_SCANNED], dtype=np.int8)
 _UNSURE = -2  # a rule end meaning "a rule not scanned could match here"
 # Zero bytes after the string (see scan_kernel): the farthest fixed-offset read past a position is
@@ -319,7 +319,8 @@ def _match_ipv4(s, p):
 
 
 # ----------------------------------------------------------------------------------------------------
-# rules not scanned: a test at a position that is true whenever the rule would match there
+# the rule not scanned (url), and the tests that rule out e-mail and IPv6 quickly: true whenever
+# the rule would match there
 
 
 @_jit
@@ -420,6 +421,143 @@ def _ipv6_may_match(s, p):
     if c == _COLON or _is_hex(c):  # the guard's closing look-ahead fails
         return False
     return double_colon or fields >= 6
+
+
+# IPv6 (_IPV6): the guard, then the nine forms of `tokenize._ipv6_address` in their order, each with
+# its choices in the order the pattern tries them (an optional head first taken, then left out; the
+# IPv4 reading of ls32 before h16:h16), then the zone, the prefix and the end test, each tried
+# longest first. The first complete match is the pattern's.
+
+
+@_jit
+def _h16_end(s, i):
+    """_H16 = [0-9A-Fa-f]{1,4}+ at i: its end, or -1."""
+    k = 0
+    while k < 4 and _is_hex(_at(s, i + k)):
+        k += 1
+    return i + k if k else -1
+
+
+@_jit
+def _h16_colons_end(s, i, count):
+    """(?:_H16:){count} at i: its end, or -1 (possessive parts: one way to match)."""
+    for _ in range(count):
+        e = _h16_end(s, i)
+        if e < 0 or _at(s, e) != _COLON:
+            return -1
+        i = e + 1
+    return i
+
+
+@_jit
+def _ipv6_head_end(s, p, most):
+    """(?>_H16(?::_H16){0,most}) at p: its end (as many parts as there are, up to most), or -1."""
+    e = _h16_end(s, p)
+    if e < 0:
+        return -1
+    for _ in range(most):
+        if _at(s, e) != _COLON:
+            break
+        f = _h16_end(s, e + 1)
+        if f < 0:
+            break
+        e = f
+    return e
+
+
+@_jit
+def _ipv6_end_ok(s, e):
+    """_END_IPV6: (?!\\w|[.:]\\w)."""
+    c = _at(s, e)
+    return not (_is_word(c) or ((c == _DOT or c == _COLON) and _is_word(_at(s, e + 1))))
+
+
+@_jit
+def _ipv6_prefix_then_end(s, z):
+    """(?:/[0-9]{1,3})? then _END_IPV6 at z: the end, or -1 (the prefix's digits longest first)."""
+    if _at(s, z) == _SLASH:
+        for digits in range(_digits_up_to(s, z + 1, 3), 0, -1):
+            if _ipv6_end_ok(s, z + 1 + digits):
+                return z + 1 + digits
+    return z if _ipv6_end_ok(s, z) else -1
+
+
+@_jit
+def _ipv6_suffix_end(s, a):
+    """Zone (?:%[\\w.~\\-]{0,31}[\\w~\\-])?, prefix and end test after an address ending at a."""
+    if _at(s, a) == _PERCENT:
+        run = 0
+        while run < 31:
+            c = _at(s, a + 1 + run)
+            if not (_is_word(c) or c == _DOT or c == _TILDE or c == _DASH):
+                break
+            run += 1
+        for r in range(run, -1, -1):  # the greedy run gives back one character at a time
+            c = _at(s, a + 1 + r)
+            if _is_word(c) or c == _TILDE or c == _DASH:
+                e = _ipv6_prefix_then_end(s, a + 2 + r)
+                if e >= 0:
+                    return e
+    return _ipv6_prefix_then_end(s, a)
+
+
+@_jit
+def _ipv6_ls32_then_suffix(s, i):
+    """ls32 at i (_IPV4_ADDR first, then _H16:_H16) and the suffix: the token's end, or -1."""
+    q = _octet_end(s, i)
+    for _ in range(3):
+        if q < 0 or _at(s, q) != _DOT:
+            q = -1
+            break
+        q = _octet_end(s, q + 1)
+    if q >= 0:
+        e = _ipv6_suffix_end(s, q)
+        if e >= 0:
+            return e
+    q = _h16_colons_end(s, i, 1)
+    if q >= 0:
+        q = _h16_end(s, q)
+        if q >= 0:
+            return _ipv6_suffix_end(s, q)
+    return -1
+
+
+@_jit
+def _match_ipv6(s, p):
+    """_IPV6 at p: its end, or -1."""
+    if not _ipv6_may_match(s, p):  # the guard fails, or no form can match
+        return -1
+    i = _h16_colons_end(s, p, 6)  # (H16:){6} ls32
+    if i >= 0:
+        e = _ipv6_ls32_then_suffix(s, i)
+        if e >= 0:
+            return e
+    if _at(s, p) == _COLON and _at(s, p + 1) == _COLON:  # :: (H16:){5} ls32
+        i = _h16_colons_end(s, p + 2, 5)
+        if i >= 0:
+            e = _ipv6_ls32_then_suffix(s, i)
+            if e >= 0:
+                return e
+    for form in range(7):  # [head of 1 + form parts at most] '::' and what follows it
+        for with_head in (True, False):
+            h = p
+            if with_head:
+                h = _ipv6_head_end(s, p, form)
+                if h < 0:
+                    continue
+            if not (_at(s, h) == _COLON and _at(s, h + 1) == _COLON):
+                continue
+            if form < 5:  # [head] :: (H16:){4 - form} ls32
+                i = _h16_colons_end(s, h + 2, 4 - form)
+                e = _ipv6_ls32_then_suffix(s, i) if i >= 0 else -1
+            elif form == 5:  # [head] :: H16
+                i = _h16_end(s, h + 2)
+                e = _ipv6_suffix_end(s, i) if i >= 0 else -1
+            else:  # [head] ::
+                e = _ipv6_suffix_end(s, h + 2)
+            if e >= 0:
+                return e
+    return -1
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -921,8 +1059,9 @@ def _match(s, p):
         e = _match_uuid(s, p)
         if e >= 0:
             return _UUID, e
-        if _ipv6_may_match(s, p):
-            return _PUNCT, _UNSURE
+        e = _match_ipv6(s, p)
+        if e >= 0:
+            return _IPV6, e
         e = _match_mac(s, p)
         if e >= 0:
             return _MAC, e
@@ -945,8 +1084,9 @@ def _match(s, p):
         if e >= 0:
             return _HOST, e
         return _IDENT, _match_ident(s, p)
-    if _ipv6_may_match(s, p):  # the other branch: ipv6, path, number, punct
-        return _PUNCT, _UNSURE
+    e = _match_ipv6(s, p)  # the other branch: ipv6, path, number, punct
+    if e >= 0:
+        return _IPV6, e
     e = _match_path(s, p)
     if e >= 0:
         return _PATH, e
