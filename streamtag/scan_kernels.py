@@ -8,13 +8,11 @@ pattern's fast paths are proven not to change any token, so they are left out) a
 first that matches, with the regex's backtracking where a quantifier is not possessive. Each rule
 below names the part of the pattern it follows and how its candidates are ordered.
 
-Rules scanned: timestamp, ipv4, email, uuid, ipv6, mac, path, version, hex, number, word, host, ident,
-punct. Rule not scanned: url. At each position where it could match before a rule of lower
-priority (a test that never misses a match, but may report one that the full rule
-would reject), the whole piece is left *unsure* and no tokens are given for it; so is a piece with
-any character outside printable ASCII (0x21..0x7e: tab, controls, any non-ASCII character) or
-longer than `MAX_PIECE` characters. The caller tokenizes unsure pieces with the pattern. In a
-printable-ASCII piece every character is a word character or punctuation, so "symbol" never occurs.
+Every rule is scanned but "symbol" (which a printable-ASCII piece never needs: each of its
+characters is a word character or punctuation): timestamp, ipv4, url, email, uuid, ipv6, mac, path,
+version, hex, number, word, host, ident, punct. A piece with any character outside printable ASCII
+(0x21..0x7e: tab, controls, any non-ASCII character) or longer than `MAX_PIECE` characters is left
+*unsure* and no tokens are given for it; the caller tokenizes unsure pieces with the pattern.
 
 Exactness is checked against `tokenize` (tests/test_scan_kernels.py); being unsure is always
 correct, it only costs speed.
@@ -43,13 +41,13 @@ __all__ = ["MAX_PIECE", "RULES_SCANNED", "BatchKernels", "batch_kernels", "scan"
 MAX_PIECE = 1024
 
 RULES_SCANNED = ("timestamp", "ipv4", "uuid", "mac", "path", "version", "hex", "number", "word", "host",
-                 "ident", "punct", "email", "ipv6")
+                 "ident", "punct", "email", "ipv6", "url")
 
 # Rule codes inside the kernel (indices into _KIND_CODES, which maps them to indices into KINDS;
 # passed as an argument so the cached machine code never holds a stale order of KINDS).
-_TIMESTAMP, _IPV4, _UUID, _MAC, _PATH, _VERSION, _HEX, _NUMBER, _WORD, _HOST, _IDENT, _PUNCT, _EMAIL, _IPV6 = range(14)
+_TIMESTAMP, _IPV4, _UUID, _MAC, _PATH, _VERSION, _HEX, _NUMBER, _WORD, _HOST, _IDENT, _PUNCT, _EMAIL, _IPV6, _URL = range(15)
 _KIND_CODES = np.array([KINDS.index(rule) for rule in RULES_SCANNED], dtype=np.int8)
-_UNSURE = -2  # a rule end meaning "a rule not scanned could match here"
+_UNSURE = -2  # a rule end meaning "leave the piece to the pattern" (no rule gives it today)
 # Zero bytes after the string (see scan_kernel): the farthest fixed-offset read past a position is
 # 45 characters (urn:uuid: and a UUID), and every scan stops at the first zero.
 _PAD = 64
@@ -319,8 +317,7 @@ def _match_ipv4(s, p):
 
 
 # ----------------------------------------------------------------------------------------------------
-# the rule not scanned (url), and the tests that rule out e-mail and IPv6 quickly: true whenever
-# the rule would match there
+# url, e-mail: the quick tests first (true whenever the rule would match there), then the rules
 
 
 @_jit
@@ -335,6 +332,64 @@ def _url_may_match(s, p):
             break
         j += 1
     return _at(s, j) == _COLON and _at(s, j + 1) == _SLASH and _at(s, j + 2) == _SLASH
+
+
+@_jit
+def _is_url_plain(c):
+    """_URL_PLAIN for a printable-ASCII character (0 is the edge or a ' ', never in the class)."""
+    return not (c == 0 or c == 60 or c == 62 or c == 34 or c == _APOSTROPHE or c == 96 or c == 123 or c == 125
+                or c == 124 or c == _BACKSLASH or c == 94 or c == 40 or c == 41 or c == 91 or c == 93
+                or _is_url_stop(c))
+
+
+@_jit
+def _is_url_stop(c):
+    """[.,;:!?]: characters a URL takes only when more of it follows."""
+    return c == _DOT or c == _COMMA or c == 59 or c == _COLON or c == 33 or c == 63
+
+
+@_jit
+def _match_url(s, p):
+    """_URL at p: its end, or -1. The scheme's run cannot hold ':', so it ends at one place; the body
+    (?:...)*+ is possessive and each of its parts ends at one place ('[...]' and '(...)' cannot
+    hold their closing bracket): each round takes the first part that matches, until none does."""
+    if not _url_may_match(s, p):
+        return -1
+    q = p + 1
+    while not (_at(s, q) == _COLON and _at(s, q + 1) == _SLASH and _at(s, q + 2) == _SLASH):
+        q += 1
+    q += 3
+    while True:
+        c = _at(s, q)
+        if _is_url_plain(c):
+            q += 1
+            while _is_url_plain(_at(s, q)):
+                q += 1
+        elif _is_url_stop(c):
+            e = q + 1
+            while _is_url_stop(_at(s, e)):
+                e += 1
+            after = _at(s, e)
+            if not (_is_url_plain(after) or after == 91 or after == 40):
+                return q
+            q = e
+        elif c == 91 or c == 40:  # '[' host literal, '(' balanced part: at most 64 inside
+            k = 0
+            while k <= 64:
+                d = _at(s, q + 1 + k)
+                if c == 91:
+                    inside = _is_alnum(d) or d == _COLON or d == _DOT or d == _PERCENT or d == _UNDERSCORE \
+                        or d == _TILDE or d == _DASH
+                else:
+                    inside = d != 0 and d != 40 and d != 41 and d != 60 and d != 62 and d != 34 and d != _APOSTROPHE
+                if not inside:
+                    break
+                k += 1
+            if k > 64 or _at(s, q + 1 + k) != (93 if c == 91 else 41):
+                return q
+            q += k + 2
+        else:
+            return q
 
 
 @_jit
@@ -1025,8 +1080,7 @@ def _fast_ident_end(s, p):
 
 @_jit
 def _match(s, p):
-    """(rule, end) of the token at p: the first rule of tokenize._RULES that matches; end _UNSURE
-    where a rule not scanned could match first."""
+    """(rule, end) of the token at p: the first rule of tokenize._RULES that matches."""
     c = _at(s, p)
     if _is_letter(c) or c == _UNDERSCORE:
         e = _fast_word_end(s, p) if c != _UNDERSCORE else -1
@@ -1051,8 +1105,9 @@ def _match(s, p):
         e = _match_ipv4(s, p)
         if e >= 0:
             return _IPV4, e
-        if _url_may_match(s, p):
-            return _PUNCT, _UNSURE
+        e = _match_url(s, p)
+        if e >= 0:
+            return _URL, e
         e = _match_email(s, p)
         if e >= 0:
             return _EMAIL, e

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import datetime
 import ipaddress
-import re
 import uuid
 from pathlib import Path
 
@@ -61,10 +60,9 @@ def reference(piece: str) -> list[tuple[int, int, str]]:
 
 def documented_reason_to_be_unsure(piece: str) -> bool:
     """What the module docstring allows as a reason for an unsure piece, read on the whole piece:
-    a character outside printable ASCII, more than MAX_PIECE characters, or the signs without which
-    the rule not scanned cannot match: '://' (url). ('@' and '::' are no reason: e-mail and IPv6
-    addresses are scanned.)"""
-    return len(piece) > MAX_PIECE or any(not "!" <= ch <= "~" for ch in piece) or "://" in piece
+    a character outside printable ASCII, or more than MAX_PIECE characters (URLs, e-mail and IPv6
+    addresses are scanned)."""
+    return len(piece) > MAX_PIECE or any(not "!" <= ch <= "~" for ch in piece)
 
 
 def assert_scan_agrees(text: str) -> list[bool]:
@@ -125,12 +123,13 @@ def test_input_forms():
 
 def test_unsure_pieces_by_reason():
     # Each reason of the module docstring leaves its piece unsure and the others scanned:
-    # non-ASCII and control characters (tab is white space to the pattern, Python re: \s), '://' of
-    # a URI (RFC 3986 section 3), an over-long piece. An e-mail address (RFC 5322 section 3.4.1
-    # addr-spec) and an IPv6 address (RFC 4291 section 2.2) are scanned (both from memory).
+    # non-ASCII and control characters (tab is white space to the pattern, Python re: \s), an
+    # over-long piece. An e-mail address (RFC 5322 section 3.4.1 addr-spec), a URI (RFC 3986 section
+    # 3) and an IPv6 address (RFC 4291 section 2.2) are scanned (all from memory).
     text = "ok caf\u00e9 a\tb mary@x.test http://a.test/ 2001:db8::1 " + "y" * (MAX_PIECE + 1) + " end"
     pieces, unsure, tokens = scanned(text)
-    assert unsure == [False, True, True, False, True, False, True, False]
+    assert unsure == [False, True, True, False, False, False, True, False]
+    assert tokens[4] == reference("http://a.test/") == [(0, 14, "url")]
     assert tokens[0] == reference("ok") and tokens[-1] == reference("end")
     assert tokens[3] == reference("mary@x.test") == [(0, 11, "email")]
     assert tokens[5] == reference("2001:db8::1") == [(0, 11, "ipv6")]
@@ -303,6 +302,37 @@ def test_property_ipv6_alphabet(text):
     # Reference: tokenize, on runs of hex digits, colons, dots, zones and prefixes, where the
     # pattern's nine IPv6 forms backtrack into each other.
     assert not any(assert_scan_agrees(text))
+
+
+# URL pieces (RFC 3986 section 3 syntax, from memory) around the pattern's bounds: a scheme of 32
+# characters at most, '[...]' host literals and '(...)' parts of 64 at most, trailing punctuation.
+URL_PIECES = [
+    "http://a.test/", "https://portal.orrivask.example/tickets/6044)", "HTTP://STATUS.ORRIVASK.EXAM",
+    "(http://a.test/x)", "<http://a.test/x>", '"http://a.test/x"', "http://a.test/x.", "http://a.test/x...",
+    "http://a.test/x.,y", "http://a.test/x?a=1&b=2#frag", "http://a.test/x?", "http://a.test/x?!",
+    "http://[2001:db8::1]:8080/x", "http://[2001:db8::1", "http://a.test/wiki/X_(y)", "http://a.test/(a(b)c)",
+    "http://a.test/(" + "z" * 64 + ")", "http://a.test/(" + "z" * 65 + ")", "http://a.test/[" + "1" * 64 + "]",
+    "http://a.test/[" + "1" * 65 + "]", "http://a.test/(x", "http://a.test/[x]", "http://a.test/[x/]",
+    "http://a.test/.[x]", "http://a.test/.(x)", "http://a.test/:(", "http://", "http:///", "http://.",
+    "a" * 32 + "://x", "a" * 33 + "://x", "1a://x", "a+b-c.d://x", "x=http://a.test/,", "mailto:a@b.c",
+    "urn:uuid:f81d4fae-7dec-11d0-a765-00a0c91e6bf6", "ftp://user:pw@host.test:21/a;type=i", "a:/b", "a:/",
+    "http://a.test/{x}", "http://a.test/a|b", "http://a.test/a\\b", "http://a.test/a^b", "http://a.test/a`b",
+]
+
+
+@pytest.mark.parametrize("piece", URL_PIECES)
+def test_url_pieces_are_scanned_as_the_pattern_reads_them(piece):
+    # tokenize (the pattern, tested against urllib.parse in tests/test_tokenize.py) is the reference.
+    for text in (piece, piece + ".", piece + ")", "(" + piece, "x=" + piece + ",", piece + " " + piece):
+        assert not any(assert_scan_agrees(text)), text
+
+
+@settings(max_examples=2000, deadline=None)
+@given(st.text(alphabet="ab1:/.,;!?()[]<>\"'{}|^`%_~-=&#@", max_size=40))
+def test_property_url_alphabet(text):
+    # Reference: tokenize, on text after a scheme, where the URL body's parts and its trailing
+    # punctuation rule meet.
+    assert not any(assert_scan_agrees("http://" + text))
 
 
 # ------------------------------------------------------------------------------------------------

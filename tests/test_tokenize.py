@@ -873,8 +873,8 @@ def test_mixed_batch_kinds_agree_with_reference_libraries(scanner):
 def test_scanner_takes_the_common_new_pieces(monkeypatch):
     # Design check (DEVELOPERS.md, tokenize.py: the batch path equals tokenize): timestamps, numbers,
     # IPv4 addresses with punctuation, key=value pieces, an IPv6 address (RFC 3849 documentation
-    # prefix) and an e-mail address never reach the pattern; a URL (RFC 3986 section 3) does. The
-    # tokens still equal tokenize per line.
+    # prefix), an e-mail address and a URL (RFC 3986 section 3) never reach the pattern; a non-ASCII
+    # word does. The tokens still equal tokenize per line.
     sent_to_pattern = []
     original = tokenize_module._match_pieces
 
@@ -886,9 +886,9 @@ def test_scanner_takes_the_common_new_pieces(monkeypatch):
     if tokenize_module._scanner() is None:
         pytest.skip("numba is not available: every piece goes through the pattern")
     lines = ['04:49:37 2025-02-15T12:27:21.510905Z 23366 "198.51.100.7"} pid=25783 dur=15682ms',
-             "2001:db8::1 ts=2025-02-15T12:27:21Z [03/Feb/2025:11:00:14 <mary@x.test>: http://x.test/a"]
+             "2001:db8::1 ts=2025-02-15T12:27:21Z [03/Feb/2025:11:00:14 <mary@x.test>: http://x.test/a caf\u00e9"]
     assert _batch_per_line(BatchTokenizer(), lines) == [tokenize(line) for line in lines]
-    assert sent_to_pattern == ["http://x.test/a"]
+    assert sent_to_pattern == ["caf\u00e9"]
 
 
 def test_batch_without_numba_uses_the_pattern(monkeypatch):
