@@ -22,7 +22,7 @@ import orjson
 from streamtag import crf
 from streamtag.errors import ConfigError, DataError
 from streamtag.model import load_model
-from streamtag.batch import fewer_collections, tag_and_encode
+from streamtag.batch import fewer_collections, keep_freed_memory, tag_and_encode
 from streamtag.decode import decode_lines
 from streamtag.tagger import Tagger
 from streamtag.tokenize import tokenize
@@ -81,6 +81,7 @@ def measure(new_tagger, warm_up: list[bytes], raw_lines: list[bytes], batch: int
 
     n_tokens = sum(len(tokenize(raw.decode("utf-8", "replace")).texts) for raw in raw_lines)
     # The collector threshold the daemon, `tag` and replay run with (see batch.fewer_collections).
+    keep_freed_memory()  # as the daemon, `tag` and replay run
     with tempfile.TemporaryDirectory() as folder, fewer_collections():
         sink = Path(folder) / "out.jsonl"
         plain = _best(repeat, lambda: _plain_pass(batches, sink))

@@ -152,7 +152,7 @@ def run_evaluate(args: argparse.Namespace) -> int:
 # -- tag ----------------------------------------------------------------------------------------
 
 def run_tag(args: argparse.Namespace) -> int:
-    from streamtag.batch import fewer_collections, tag_and_encode
+    from streamtag.batch import fewer_collections, keep_freed_memory, tag_and_encode
     from streamtag.tagger import Tagger
 
     if not 0.0 <= args.threshold <= 1.0:
@@ -161,6 +161,7 @@ def run_tag(args: argparse.Namespace) -> int:
         raise ConfigError("--batch must be >= 1")
     tagger = Tagger(load_model(args.model), max_tokens=args.max_tokens)
     out = sys.stdout.buffer
+    keep_freed_memory()
     with fewer_collections():
         for batch in _batches(_input_lines(args.files), args.batch):
             decoded = [line for _, _, _, line in batch]

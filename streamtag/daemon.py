@@ -38,7 +38,7 @@ from typing import Any, Callable
 import numpy as np
 import orjson
 
-from streamtag.batch import fewer_collections, tag_and_encode
+from streamtag.batch import fewer_collections, keep_freed_memory, tag_and_encode
 from streamtag.checkpoint import State, fsync_directory, load_state, recover_outputs, save_state, write_file_atomically
 from streamtag.config import WatchConfig, load_watch_config
 from streamtag.decode import decode_json, decode_lines
@@ -349,6 +349,7 @@ class Daemon:
         )
         self._syncer = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamtag-sync")
         try:
+            keep_freed_memory()
             with fewer_collections():
                 return self._loop()
         finally:

@@ -320,10 +320,11 @@ def _init_worker(settings: TagSettings, ignore_interrupt: bool) -> None:
     """Pool initializer: load the model once per worker process."""
     import gc
 
-    from streamtag.batch import GC_YOUNG_THRESHOLD
+    from streamtag.batch import GC_YOUNG_THRESHOLD, keep_freed_memory
     from streamtag.model import load_model
     from streamtag.tagger import Tagger
 
+    keep_freed_memory()
     if ignore_interrupt:
         # A pool worker: Ctrl-C goes to the whole process group; the parent alone decides how to
         # stop. The worker only tags, so it keeps the tagging loop's collector threshold for good.
