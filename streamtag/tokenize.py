@@ -391,7 +391,39 @@ class TokenBatch(NamedTuple):
                 for a, b in zip(bounds[:-1], bounds[1:])]
 
 
-class TokenTexts(Sequence):
+class _LazyColumn(Sequence):
+    """A column of a batch's tokens whose str items are made only when read (`TokenTexts`,
+    `TokenKinds`): subclasses give ``__len__``, one item and ``pick``; slices and iteration go through
+    ``pick``, and the column compares equal to the list of its items, either way round."""
+
+    __slots__ = ()
+
+    def _item(self, index: int) -> str:
+        raise NotImplementedError
+
+    def pick(self, indices) -> list[str]:
+        raise NotImplementedError
+
+    def __getitem__(self, index):
+        if isinstance(index, slice):
+            return self.pick(index)
+        return self._item(index)
+
+    def __iter__(self):
+        return iter(self.pick(slice(None)))
+
+    def __eq__(self, other):
+        if isinstance(other, (list, tuple, type(self))):
+            return list(self) == list(other)
+        return NotImplemented
+
+    __hash__ = None  # mutable-sequence-like: no hash, as a list
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}({list(self)!r})"
+
+
+class TokenTexts(_LazyColumn):
     """The texts of a batch's tokens (N), each cut from the batch's lines joined by ' ' when asked.
 
     Most consumers need only a few texts (the emission scorer those of types it has not met, the
@@ -411,9 +443,7 @@ class TokenTexts(Sequence):
     def __len__(self) -> int:
         return len(self.batch_starts)
 
-    def __getitem__(self, index):
-        if isinstance(index, slice):
-            return self.pick(index)
+    def _item(self, index: int) -> str:
         start = int(self.batch_starts[index])
         return self.joined[start : start + int(self.ends[index] - self.starts[index])]
 
@@ -425,21 +455,8 @@ class TokenTexts(Sequence):
         ends = starts + (self.ends[indices] - self.starts[indices])
         return list(map(self.joined.__getitem__, map(slice, starts.tolist(), ends.tolist())))
 
-    def __iter__(self):
-        return iter(self.pick(slice(None)))
 
-    def __eq__(self, other):
-        if isinstance(other, (list, tuple, TokenTexts)):
-            return list(self) == list(other)
-        return NotImplemented
-
-    __hash__ = None  # mutable-sequence-like: no hash, as a list
-
-    def __repr__(self) -> str:
-        return f"TokenTexts({list(self)!r})"
-
-
-class TokenKinds(Sequence):
+class TokenKinds(_LazyColumn):
     """The kinds of a batch's tokens (N), from their codes (N,) int8 (indices into KINDS); the str when
     asked. Compares equal to the list of its kinds."""
 
@@ -451,9 +468,7 @@ class TokenKinds(Sequence):
     def __len__(self) -> int:
         return len(self.codes)
 
-    def __getitem__(self, index):
-        if isinstance(index, slice):
-            return self.pick(index)
+    def _item(self, index: int) -> str:
         return KINDS[self.codes[index]]
 
     def pick(self, indices) -> list[str]:
@@ -461,19 +476,6 @@ class TokenKinds(Sequence):
         if not isinstance(indices, slice):
             indices = np.asarray(indices, dtype=np.int64)
         return _KIND_NAMES.take(self.codes[indices]).tolist()
-
-    def __iter__(self):
-        return iter(self.pick(slice(None)))
-
-    def __eq__(self, other):
-        if isinstance(other, (list, tuple, TokenKinds)):
-            return list(self) == list(other)
-        return NotImplemented
-
-    __hash__ = None
-
-    def __repr__(self) -> str:
-        return f"TokenKinds({list(self)!r})"
 
 
 _MAX_CACHED_PIECE = 256  # longer pieces are tokenized but not cached: a log of long unique runs
