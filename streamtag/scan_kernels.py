@@ -1079,6 +1079,26 @@ def _fast_ident_end(s, p):
 
 
 @_jit
+def _write_tokens(buffer, s, p, stop, kind_codes, starts, ends, kinds, n):
+    """The tokens of buffer[p:stop] (one piece; a 0 in it, a tab, ends a token as ' ' does) from row
+    n on: start and end (less one: the buffer's leading 0) and kind. Returns the next free row, or
+    -1 if a match is unsure (the pattern then decides the whole piece; rows from n are left to reuse)."""
+    while p < stop:
+        if buffer[p] == 0:
+            p += 1
+            continue
+        rule, e = _match(s, p)
+        if e == _UNSURE:
+            return -1
+        starts[n] = p - 1
+        ends[n] = e - 1
+        kinds[n] = kind_codes[rule]
+        n += 1
+        p = e
+    return n
+
+
+@_jit
 def _match(s, p):
     """(rule, end) of the token at p: the first rule of tokenize._RULES that matches."""
     c = _at(s, p)
@@ -1190,19 +1210,11 @@ def scan_kernel(cp, kind_codes):
         if not unsure[piece] and i - a > MAX_PIECE:
             unsure[piece] = True
         if not unsure[piece]:
-            first = n
-            p = a
-            while p < i:
-                rule, e = _match(s, p)
-                if e == _UNSURE:
-                    unsure[piece] = True
-                    n = first
-                    break
-                starts[n] = p - 1
-                ends[n] = e - 1
-                kinds[n] = kind_codes[rule]
-                n += 1
-                p = e
+            written = _write_tokens(buffer, s, a, i, kind_codes, starts, ends, kinds, n)
+            if written < 0:
+                unsure[piece] = True
+            else:
+                n = written
         piece += 1
         a = i + 1
     return starts[:n].copy(), ends[:n].copy(), kinds[:n].copy(), unsure
@@ -1471,21 +1483,11 @@ def scan_pieces_kernel(cp, piece_starts, piece_lengths, row_starts, row_ends, ro
         if sure:
             for q in range(1 + length, 1 + length + _PAD):
                 buffer[q] = 0
-            p = 1
-            while p <= length:
-                if buffer[p] == 0:  # a tab
-                    p += 1
-                    continue
-                rule, e = _match(s, p)
-                if e == _UNSURE:
-                    sure = False
-                    n = t0
-                    break
-                row_starts[n] = p - 1
-                row_ends[n] = e - 1
-                row_kinds[n] = kind_codes[rule]
-                n += 1
-                p = e
+            written = _write_tokens(buffer, s, 1, 1 + length, kind_codes, row_starts, row_ends, row_kinds, n)
+            if written < 0:
+                sure = False
+            else:
+                n = written
         if sure:
             first[j] = t0
             n_rows[j] = n - t0
