@@ -65,6 +65,12 @@ def documented_reason_to_be_unsure(piece: str) -> bool:
     return len(piece) > MAX_PIECE or any(not "!" <= ch <= "~" for ch in piece)
 
 
+def in_contexts(piece: str) -> tuple[str, ...]:
+    """A piece alone, with trailing punctuation, in brackets, as a value and beside itself: where the
+    pattern's rules for a piece's edges and its neighbours meet."""
+    return (piece, piece + ".", piece + ")", "(" + piece, "x=" + piece + ",", piece + " " + piece)
+
+
 def assert_scan_agrees(text: str) -> list[bool]:
     """Every piece not unsure has exactly tokenize's tokens; unsure pieces only for a documented
     reason; the scan plus the pattern on the unsure pieces gives tokenize(text). Returns the flags."""
@@ -292,7 +298,7 @@ IPV6_PIECES = [
 @pytest.mark.parametrize("piece", IPV6_PIECES)
 def test_ipv6_pieces_are_scanned_as_the_pattern_reads_them(piece):
     # tokenize (the pattern, tested against ipaddress in tests/test_tokenize.py) is the reference.
-    for text in (piece, piece + ".", piece + ")", "(" + piece, "x=" + piece + ",", piece + " " + piece):
+    for text in in_contexts(piece):
         assert not any(assert_scan_agrees(text)), text
 
 
@@ -323,7 +329,7 @@ URL_PIECES = [
 @pytest.mark.parametrize("piece", URL_PIECES)
 def test_url_pieces_are_scanned_as_the_pattern_reads_them(piece):
     # tokenize (the pattern, tested against urllib.parse in tests/test_tokenize.py) is the reference.
-    for text in (piece, piece + ".", piece + ")", "(" + piece, "x=" + piece + ",", piece + " " + piece):
+    for text in in_contexts(piece):
         assert not any(assert_scan_agrees(text)), text
 
 
@@ -400,7 +406,7 @@ ADVERSARIAL = [
 def test_adversarial_pieces(piece):
     # tokenize (the project's pattern, itself tested against RFCs) is the reference for each piece,
     # alone and with trailing punctuation and a neighbour piece.
-    for text in (piece, piece + ".", piece + ")", "(" + piece, piece + " " + piece, "x=" + piece + ","):
+    for text in in_contexts(piece):
         assert_scan_agrees(text)
 
 
